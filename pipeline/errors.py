@@ -5,8 +5,9 @@
     │   └── ExpressionError       a universe/condition expression is not in the safe language (exit 2)
     ├── InputDataError            the input data cannot be used: schema broken, unreadable, empty,
     │                             a broken geography lookup, or more rejected rows than allowed (exit 3)
-    └── ReleaseRefused            the release exists and --replace was not given, another run holds
-                                  the lock, or the disclosure audit failed (exit 4)
+    ├── ReleaseRefused            the release exists and --replace was not given, another run holds
+    │                             the lock, or the disclosure audit failed (exit 4)
+    └── PublishError              a release file cannot be written: disk full, no permission (exit 1)
 
 Anything else escaping is a bug: exit 1.
 """
@@ -50,3 +51,9 @@ class ReleaseRefused(RatebookError):
     """Raised when a release may not be written: it exists, the output is locked, or the audit failed."""
 
     exit_code = 4
+
+
+class PublishError(RatebookError):
+    """Raised when a release file cannot be written (disk full, no permission)."""
+
+    exit_code = 1

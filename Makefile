@@ -1,0 +1,31 @@
+# The two commands of the README: `make demo` and `make test`. Each creates .venv when needed.
+PYTHON ?= python3
+VENV   := .venv
+BIN    := $(VENV)/bin
+
+.PHONY: demo test check clean
+
+$(BIN)/python:
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+
+$(VENV)/.installed: pyproject.toml | $(BIN)/python
+	$(BIN)/python -m pip install --quiet -e .
+	touch $@
+
+$(VENV)/.installed-test: pyproject.toml | $(BIN)/python
+	$(BIN)/python -m pip install --quiet -e '.[test]'
+	touch $@ $(VENV)/.installed
+
+demo: $(VENV)/.installed
+	$(BIN)/ratebook demo --out data/raw
+	$(BIN)/ratebook run configs/demo.yaml --replace
+
+test: $(VENV)/.installed-test
+	$(BIN)/python -m pytest -q
+
+check: $(VENV)/.installed
+	$(BIN)/ratebook check configs/demo.yaml
+
+clean:
+	rm -rf $(VENV) data/out/* data/raw/demo_* .pytest_cache

@@ -1,0 +1,109 @@
+"""metadata.json: what every public column, code, method and threshold means.
+
+Pure: builds a dict from the config, nothing is read or written here. No timestamps, so the same
+config gives the same bytes.
+"""
+
+from __future__ import annotations
+
+from pipeline import __version__
+from pipeline.flags import Status, reason_descriptions
+from pipeline.methods import intervals, variance
+from pipeline.stages.ingest import REJECT_DESCRIPTIONS
+
+CAUTIONS = [
+    "These figures are estimates from a sample and carry sampling error; the interval and the margin "
+    "of error describe that error under the survey design, not errors of coverage, non-response or "
+    "measurement.",
+    "status 'caution' means the figure is printed but imprecise or resting on an approximation that "
+    "may not hold; read it with its interval. status 'suppressed' means the figure is withheld, either "
+    "because it is too unreliable to print or to protect the confidentiality of respondents.",
+    "The reliability thresholds are defaults drawn from common practice. Each office must set them "
+    "from its own quality standards before publishing.",
+    "The disclosure rules here are a minimum. What may be published is decided by the office's "
+    "confidentiality rules and by local law and policy, which take precedence over these defaults.",
+    "Complementary suppression is not applied in this version: a withheld cell may be recoverable by "
+    "subtraction from published totals (a parent area minus its other children, or the 'all' category "
+    "minus the other categories). Review a release for this before making it public.",
+]
+
+
+def column_descriptions(config, domain_names) -> dict[str, str]:
+    est = config.estimation
+    cols = {
+        "indicator": "Indicator name (see 'indicators').",
+        "geo_level": f"Geography level: one of {', '.join(config.level_names)}.",
+        "geo_code": "Code of the geographic unit at that level.",
+        "geo_name": "Name of the geographic unit.",
+    }
+    for name in domain_names:
+        cols[name] = f"Category of domain '{name}', or 'all' for every category together."
+    cols.update({
+        "estimate": "Estimated proportion, in [0, 1]: weighted count / weighted base.",
+        "std_error": "Standard error of the estimate under the survey design (see 'method.variance').",
+        "ci_lower": f"Lower bound of the {est.confidence:.0%} confidence interval (see 'method.interval').",
+        "ci_upper": f"Upper bound of the {est.confidence:.0%} confidence interval.",
+        "margin_of_error": f"Margin of error at {est.margin_confidence:.0%} confidence: z × standard error.",
+        "cv": "Coefficient of variation: standard error / estimate (empty when the estimate is 0).",
+        "sample_size": "Unweighted number of sampled records in the base (the denominator).",
+        "weighted_base": "Estimated population in the base (sum of weights)"
+                         + (f", rounded to the nearest {config.disclosure.round_counts_to}."
+                            if config.disclosure.round_counts_to else "."),
+        "weighted_count": "Estimated population with the characteristic (sum of weights)"
+                          + (f", rounded to the nearest {config.disclosure.round_counts_to}."
+                             if config.disclosure.round_counts_to else "."),
+        "design_effect": "Design effect: design variance / (p̂q̂/n).",
+        "effective_n": "Effective sample size: p̂q̂ / design variance, at most the sample size.",
+        "status": "published, caution or suppressed (see 'status_codes').",
+        "reasons": "';'-separated reason codes (see 'reason_codes'); empty when none applies.",
+        "note": "Footnote for a reader, explaining the reason codes.",
+    })
+    return cols
+
+
+def build_metadata(config, domain_names) -> dict:
+    s = config.settings
+    rel, dis, est = s.reliability, s.disclosure, s.estimation
+    design = s.design
+    variance_method = {"simple_random": "p̂q̂/n (simple random sampling; no finite population correction applied)",
+                       "kish": "p̂q̂/n_eff with n_eff = (Σw)²/Σw² (Kish 1992, J. Official Statistics 8:183)"}
+    if design.variance == "replicate":
+        reps = design.replicates
+        variance_text = (f"Replicate weights {reps.prefix}1..{reps.prefix}{reps.count}, method "
+                         f"{reps.method}: {variance.REPLICATE_DESCRIPTIONS[reps.method]}")
+    else:
+        variance_text = variance_method[design.variance]
+    return {
+        "release": {"name": s.release.name, "title": s.release.title, "publisher": s.release.publisher,
+                    "description": s.release.description.strip()},
+        "produced_by": {"software": "ratebook", "version": __version__},
+        "cautions": CAUTIONS,
+        "columns": column_descriptions(config, domain_names),
+        "status_codes": {
+            Status.PUBLISHED.value: "Printed without reservation.",
+            Status.CAUTION.value: "Printed, to be read with care (see reasons).",
+            Status.SUPPRESSED.value: "Withheld: every figure column is empty (see reasons).",
+        },
+        "reason_codes": reason_descriptions(config),
+        "method": {
+            "estimate": "p̂ = Σw·y / Σw over the records of the base (ratio estimator).",
+            "variance": variance_text,
+            "weight": design.weight,
+            "interval": {"name": est.interval, "confidence": est.confidence,
+                         "description": intervals.METHOD_DESCRIPTIONS[est.interval],
+                         "sample_size_used": "effective sample size (equal to the sample size under simple random sampling)"},
+            "margin_of_error": {"confidence": est.margin_confidence,
+                                "description": "z × standard error with z = Φ⁻¹(1 − α/2)"},
+            "item_nonresponse": "A record in an indicator's universe whose condition columns are missing "
+                                "leaves that indicator's base (it is not counted as 'no').",
+        },
+        "thresholds": {
+            "reliability": rel.model_dump(),
+            "disclosure": dis.model_dump(),
+        },
+        "indicators": {name: ind.model_dump() for name, ind in s.indicators.items()},
+        "domains": {name: dom.model_dump(exclude_none=True) for name, dom in s.domains.items()},
+        "tables": [t.model_dump() for t in s.tables],
+        "geography_levels": config.level_names,
+        "reject_codes": {r.value: text for r, text in REJECT_DESCRIPTIONS.items()},
+    }

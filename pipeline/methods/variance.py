@@ -1,0 +1,250 @@
+"""Variances of a ratio estimate p̂ = Σwy/Σw, as arrays over cells (DESIGN.md §4).
+
+Simple random sampling (with an optional finite population correction), Kish's effective sample
+size, and replicate-weight variances. Design effect and effective n turn any of these into the
+quantities the interval methods and reliability rules need.
+
+Adding a replicate method is local: one `ReplicateMethod` member and one `_REPLICATE_METHODS`
+line giving its scale factor, the options it uses, and a one-line description. Per-replicate
+multipliers (e.g. (n_h − 1)/n_h for a stratified jackknife) are already carried by
+`replicate_variance`.
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+from dataclasses import dataclass
+from enum import Enum
+from typing import Callable
+
+import numpy as np
+
+__all__ = [
+    "REPLICATE_DESCRIPTIONS",
+    "ReplicateMethod",
+    "design_effect",
+    "effective_n",
+    "kish_effective_n",
+    "kish_variance",
+    "replicate_estimates",
+    "replicate_scale",
+    "replicate_variance",
+    "srs_variance",
+]
+
+
+def _arr(values) -> np.ndarray:
+    return np.asarray(values, dtype=float)
+
+
+def _pq(p_hat) -> np.ndarray:
+    p = _arr(p_hat)
+    return p * (1.0 - p)
+
+
+# ---------------------------------------------------------------------------------------------
+# Simple random sampling and Kish.
+
+
+def srs_variance(p_hat, n, *, population_size=None, fpc_threshold: float = 0.10) -> np.ndarray:
+    """p̂q̂/n, times (1 − n/N) where N is known and the sampling fraction n/N exceeds
+    `fpc_threshold` (common practice: no correction while the sample is under 10% of the
+    population). N may be None, a scalar or an array with NaN for "unknown". n <= 0 gives NaN."""
+    if not (0.0 <= float(fpc_threshold) <= 1.0):
+        raise ValueError(f"fpc_threshold ({fpc_threshold!r}) must be in [0, 1]")
+    n = _arr(n)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        v = np.where(n > 0, _pq(p_hat) / np.where(n > 0, n, 1.0), np.nan)
+        if population_size is None:
+            return v
+        big_n = np.broadcast_to(_arr(population_size), v.shape)
+        known = np.isfinite(big_n) & (big_n > 0)
+        fraction = np.where(known, n / np.where(known, big_n, 1.0), 0.0)
+    if np.any(fraction > 1.0):
+        raise ValueError("sample size n exceeds population_size N in some cell")
+    # Finite population correction (1 − n/N) for sampling without replacement
+    # (Cochran 1977, Sampling Techniques, ch. 3).
+    return np.where(fraction > fpc_threshold, v * (1.0 - fraction), v)
+
+
+def kish_effective_n(sum_w, sum_w2) -> np.ndarray:
+    """(Σw)²/Σw², the sample size that gives the same variance under equal weights
+    (Kish 1992, J. Official Statistics 8:183). NaN where Σw² <= 0."""
+    sw, sw2 = _arr(sum_w), _arr(sum_w2)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(sw2 > 0, sw * sw / np.where(sw2 > 0, sw2, 1.0), np.nan)
+
+
+def kish_variance(p_hat, sum_w, sum_w2) -> np.ndarray:
+    """p̂q̂/n_eff with n_eff the Kish effective sample size (Kish 1992)."""
+    n_eff = kish_effective_n(sum_w, sum_w2)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(n_eff > 0, _pq(p_hat) / np.where(n_eff > 0, n_eff, 1.0), np.nan)
+
+
+# ---------------------------------------------------------------------------------------------
+# Replicate weights.
+
+
+class ReplicateMethod(str, Enum):
+    """Stable names of the replicate variance methods (values appear in configs and metadata)."""
+
+    SUCCESSIVE_DIFFERENCE = "successive_difference"
+    JACKKNIFE_DELETE1 = "jackknife_delete1"
+    BRR = "brr"
+    FAY = "fay"
+    CUSTOM = "custom"
+
+
+@dataclass(frozen=True)
+class _Replicate:
+    scale: Callable[[int, float | None, float | None], float]  # (R, fay_rho, factor) -> scale
+    description: str
+    options: tuple[str, ...] = ()  # which of fay_rho / factor the method requires
+
+
+_REPLICATE_METHODS: dict[ReplicateMethod, _Replicate] = {
+    ReplicateMethod.SUCCESSIVE_DIFFERENCE: _Replicate(
+        lambda r, rho, f: 4.0 / r,
+        "v = (4/R) Σ_r (p̂_r − p̂)² (Fay & Train 1995, ASA Proc. Govt. Stat. Section)",
+    ),
+    ReplicateMethod.JACKKNIFE_DELETE1: _Replicate(
+        lambda r, rho, f: (r - 1.0) / r,
+        "v = ((R−1)/R) Σ_r (p̂_r − p̂)², one unit deleted per replicate (Wolter 2007, ch. 4)",
+    ),
+    ReplicateMethod.BRR: _Replicate(
+        lambda r, rho, f: 1.0 / r,
+        "v = (1/R) Σ_r (p̂_r − p̂)², balanced half-samples (McCarthy 1969; Wolter 2007, ch. 3)",
+    ),
+    ReplicateMethod.FAY: _Replicate(
+        lambda r, rho, f: 1.0 / (r * (1.0 - rho) ** 2),
+        "v = (1/(R(1−ρ)²)) Σ_r (p̂_r − p̂)², half-samples perturbed by ρ (Judkins 1990, "
+        "J. Official Statistics 6:223)",
+        options=("fay_rho",),
+    ),
+    ReplicateMethod.CUSTOM: _Replicate(
+        lambda r, rho, f: f,
+        "v = factor · Σ_r m_r (p̂_r − p̂)², factor and per-replicate multipliers m_r supplied "
+        "with the replicate weights",
+        options=("factor",),
+    ),
+}
+
+REPLICATE_DESCRIPTIONS: dict[str, str] = {
+    m.value: spec.description for m, spec in _REPLICATE_METHODS.items()
+}
+
+
+def _lookup_replicate(method: str) -> ReplicateMethod:
+    try:
+        return ReplicateMethod(method)
+    except ValueError:
+        allowed = sorted(m.value for m in ReplicateMethod)
+        message = f"unknown replicate method {method!r}; allowed: {', '.join(allowed)}"
+        close = difflib.get_close_matches(str(method), allowed, n=1)
+        if close:
+            message += f"; did you mean {close[0]!r}?"
+        raise ValueError(message) from None
+
+
+def replicate_scale(
+    method: str,
+    *,
+    replicates: int,
+    fay_rho: float | None = None,
+    factor: float | None = None,
+) -> float:
+    """The constant in front of Σ_r m_r (p̂_r − p̂)² for `method` with R = `replicates`.
+
+    successive_difference 4/R (Fay & Train 1995); jackknife_delete1 (R−1)/R; brr 1/R;
+    fay 1/(R(1−ρ)²) (Judkins 1990); custom: `factor` as given. fay_rho is required by (and only
+    allowed with) fay, factor by (and only with) custom, so a misplaced option cannot pass silently.
+    """
+    chosen = _lookup_replicate(method)
+    spec = _REPLICATE_METHODS[chosen]
+    if isinstance(replicates, bool) or int(replicates) != replicates or replicates < 2:
+        raise ValueError(f"replicates ({replicates!r}) must be >= 2")
+    given = {"fay_rho": fay_rho, "factor": factor}
+    for name, value in given.items():
+        if name in spec.options and value is None:
+            raise ValueError(f"replicate method {chosen.value!r} needs {name}")
+        if name not in spec.options and value is not None:
+            raise ValueError(f"{name} ({value!r}) is not used by replicate method {chosen.value!r}")
+    if fay_rho is not None and not (0.0 <= float(fay_rho) < 1.0):
+        raise ValueError(f"fay_rho ({fay_rho!r}) must be in [0, 1)")
+    if factor is not None and not (math.isfinite(float(factor)) and float(factor) > 0.0):
+        raise ValueError(f"factor ({factor!r}) must be a finite number > 0")
+    return float(spec.scale(int(replicates), fay_rho, factor))
+
+
+def replicate_estimates(sum_wy_r, sum_w_r) -> np.ndarray:
+    """p̂_r = Σ w_r y / Σ w_r for every cell and replicate, shape (cells, R); NaN where Σ w_r = 0."""
+    num, den = _arr(sum_wy_r), _arr(sum_w_r)
+    if num.shape != den.shape:
+        raise ValueError(f"sum_wy_r has shape {num.shape} but sum_w_r has shape {den.shape}")
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(den != 0, num / np.where(den != 0, den, 1.0), np.nan)
+
+
+def replicate_variance(
+    p_hat,
+    p_hat_replicates,
+    *,
+    method: str,
+    fay_rho: float | None = None,
+    factor: float | None = None,
+    multipliers=None,
+) -> np.ndarray:
+    """v = scale · Σ_r m_r (p̂_r − p̂)² per cell (DESIGN.md §4), p_hat shape (cells,),
+    p_hat_replicates shape (cells, R), multipliers m_r shape (R,) defaulting to 1.
+
+    A NaN replicate estimate (the cell has zero weight in that replicate, e.g. a jackknife
+    replicate that deletes the only cluster holding the cell) contributes 0: the replicate carries
+    no information about the cell, and one such replicate must not blank the cell's variance.
+    This can understate the variance of very thin cells, which the reliability rules withhold
+    anyway. A NaN p_hat gives a NaN variance.
+    """
+    p = _arr(p_hat)
+    reps = _arr(p_hat_replicates)
+    if reps.ndim != 2 or p.ndim != 1 or reps.shape[0] != p.shape[0]:
+        raise ValueError(
+            f"p_hat_replicates has shape {reps.shape}; expected (cells, R) with cells = "
+            f"{p.shape[0] if p.ndim == 1 else p.shape} from p_hat"
+        )
+    r = reps.shape[1]
+    scale = replicate_scale(method, replicates=r, fay_rho=fay_rho, factor=factor)
+    if multipliers is None:
+        m = np.ones(r)
+    else:
+        m = _arr(multipliers)
+        if m.shape != (r,):
+            raise ValueError(f"multipliers has shape {m.shape}; expected ({r},), one per replicate")
+        if not np.all(np.isfinite(m) & (m >= 0)):
+            raise ValueError("multipliers must be finite and >= 0")
+    squared = np.nan_to_num((reps - p[:, None]) ** 2, nan=0.0, posinf=np.inf)
+    v = scale * (squared @ m)
+    return np.where(np.isfinite(p), v, np.nan)
+
+
+# ---------------------------------------------------------------------------------------------
+# From a variance to design effect and effective n (DESIGN.md §4).
+
+
+def design_effect(variance, p_hat, n) -> np.ndarray:
+    """v / (p̂q̂/n): the variance relative to simple random sampling of the same n
+    (Kish 1965, Survey Sampling). NaN where p̂q̂ = 0 or n <= 0."""
+    v, pq, n = _arr(variance), _pq(p_hat), _arr(n)
+    ok = (pq > 0) & (n > 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(ok, v * np.where(ok, n, 1.0) / np.where(ok, pq, 1.0), np.nan)
+
+
+def effective_n(variance, p_hat, n) -> np.ndarray:
+    """p̂q̂/v, the SRS size with the same variance, capped at n; n where v = 0 (no information
+    to go below n, e.g. p̂ = 0 or 1). NaN where v or p̂ is NaN."""
+    v, pq, n = _arr(variance), _pq(p_hat), _arr(n)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        raw = np.where(v > 0, pq / np.where(v > 0, v, 1.0), n)
+    out = np.minimum(raw, n)
+    return np.where(np.isnan(v) | np.isnan(pq), np.nan, out)

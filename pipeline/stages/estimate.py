@@ -1,0 +1,56 @@
+"""Estimate: p̂, its design-based variance, standard error, design effect, effective n, the
+confidence interval and the margin of error, for every rolled-up cell.
+
+Computed from the cell statistics alone (DESIGN §2). The math is in pipeline.methods.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from pipeline.methods import intervals, variance
+from pipeline.stages.aggregate import CellTable
+
+
+def estimate(cells: CellTable, config) -> pd.DataFrame:
+    f = cells.frame.copy()
+    n = f["sample_size"].to_numpy(dtype=np.float64)
+    base = f["weighted_base"].to_numpy()
+    with np.errstate(invalid="ignore", divide="ignore"):
+        p_hat = np.where(base > 0, f["weighted_count"].to_numpy() / base, np.nan)
+    v = cell_variance(cells, config, p_hat=p_hat, n=n)
+    se = np.sqrt(v)
+    n_eff = variance.effective_n(v, p_hat, n)
+    est = config.estimation
+    interval = intervals.proportion_interval(p_hat, n_eff, method=est.interval, confidence=est.confidence,
+                                             std_error=se)
+    f["estimate"] = p_hat
+    f["variance"] = v
+    f["std_error"] = se
+    f["ci_lower"] = interval.lower
+    f["ci_upper"] = interval.upper
+    f["margin_of_error"] = intervals.z_value(est.margin_confidence) * se
+    with np.errstate(invalid="ignore", divide="ignore"):
+        f["cv"] = np.where(p_hat > 0, se / p_hat, np.nan)
+    f["design_effect"] = variance.design_effect(v, p_hat, n)
+    f["effective_n"] = n_eff
+    return f
+
+
+def cell_variance(cells: CellTable, config, *, p_hat: np.ndarray, n: np.ndarray) -> np.ndarray:
+    """Variance of p̂ by the configured method; NaN where the cell has no sample."""
+    method = config.design.variance
+    if method == "simple_random":
+        v = variance.srs_variance(p_hat, n)
+    elif method == "kish":
+        v = variance.kish_variance(p_hat, cells.frame["weighted_base"].to_numpy(),
+                                   cells.frame["sum_squared_weights"].to_numpy())
+    elif method == "replicate":
+        reps = config.design.replicates
+        p_rep = variance.replicate_estimates(cells.replicate_count, cells.replicate_base)
+        v = variance.replicate_variance(p_hat, p_rep, method=reps.method, fay_rho=reps.fay_rho,
+                                        factor=reps.factor, multipliers=reps.multipliers)
+    else:  # the config only admits the methods above
+        raise AssertionError(f"design.variance {method!r} has no estimator")
+    return np.where(n > 0, v, np.nan)

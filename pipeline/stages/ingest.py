@@ -1,0 +1,504 @@
+"""Ingest: read the geography lookup and the microdata in record batches, and validate them.
+
+This is the only stage that reads files. Microdata are read batch by batch (memory follows the
+batch size, not the number of records). Problems with the input as a whole (a missing column, an
+uncoercible type, an unreadable or empty file, a broken lookup) raise InputDataError listing every
+problem; problems with single rows set those rows aside as rejects, each with the column, the
+rule (a stable reason code) and the offending value. Row rules are a pandera schema built from
+the config (`build_row_schema`), kept apart from the code that applies it.
+"""
+
+from __future__ import annotations
+
+import glob
+import hashlib
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from enum import Enum
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pandera.pandas as pa
+import pyarrow as arrow
+import pyarrow.csv as arrow_csv
+import pyarrow.parquet as pq
+
+from pipeline.errors import InputDataError
+
+SNIFF_BLOCK_BYTES = 1 << 16
+
+
+class RejectReason(str, Enum):
+    """Why a row was set aside. Stable codes: they appear in rejects.parquet and in metadata."""
+
+    MALFORMED_ROW = "malformed_row"                  # CSV line with the wrong number of fields
+    NOT_A_NUMBER = "not_a_number"                    # text where a number is declared
+    NOT_AN_INTEGER = "not_an_integer"                # a fraction where an integer is declared
+    MISSING_NOT_ALLOWED = "missing_not_allowed"      # empty where missing: forbidden
+    OUT_OF_RANGE = "out_of_range"                    # outside the declared min/max
+    VALUE_NOT_ALLOWED = "value_not_allowed"          # not among the declared values
+    DUPLICATE_RECORD_ID = "duplicate_record_id"      # the record id was seen before (first kept)
+    UNKNOWN_GEOGRAPHY = "unknown_geography"          # geography key not in the lookup
+    WEIGHT_NOT_POSITIVE = "weight_not_positive"      # weight missing, infinite or <= 0
+    REPLICATE_WEIGHT_INVALID = "replicate_weight_invalid"  # replicate weight missing, infinite or < 0
+
+
+REJECT_DESCRIPTIONS = {
+    RejectReason.MALFORMED_ROW: "the CSV line has a different number of fields than the header",
+    RejectReason.NOT_A_NUMBER: "the value is not a number but the column is declared numeric",
+    RejectReason.NOT_AN_INTEGER: "the value has a fraction but the column is declared integer",
+    RejectReason.MISSING_NOT_ALLOWED: "the value is missing but the column does not allow missing values",
+    RejectReason.OUT_OF_RANGE: "the value is outside the declared min/max",
+    RejectReason.VALUE_NOT_ALLOWED: "the value is not one of the declared values",
+    RejectReason.DUPLICATE_RECORD_ID: "the record id appeared earlier in the input; the first record is kept",
+    RejectReason.UNKNOWN_GEOGRAPHY: "the geography key is not a code of the finest level of the lookup",
+    RejectReason.WEIGHT_NOT_POSITIVE: "the weight is missing, not finite or not greater than 0",
+    RejectReason.REPLICATE_WEIGHT_INVALID: "a replicate weight is missing, not finite or negative",
+}
+
+REJECT_COLUMNS = ["source_file", "row_number", "record_id", "column", "rule", "value"]
+
+
+# --------------------------------------------------------------------------------------------
+# Geography lookup
+
+
+@dataclass(frozen=True)
+class Geography:
+    """The validated geography tree. Finest units are in a fixed order (sorted by the codes of
+    every level, coarsest first); `unit_index[level][i]` is the position, within that level's
+    `codes`, of the unit that holds finest unit i."""
+
+    levels: tuple[str, ...]
+    codes: dict[str, np.ndarray]
+    names: dict[str, np.ndarray]
+    unit_index: dict[str, np.ndarray]
+    population: np.ndarray | None = None
+
+    @property
+    def finest(self) -> str:
+        return self.levels[-1]
+
+    @property
+    def finest_codes(self) -> np.ndarray:
+        return self.codes[self.finest]
+
+
+def read_geography(config) -> tuple[Geography, dict]:
+    """Read and check the lookup: every level's code and name columns present, no empty codes,
+    every code with one name and (below the top) one parent. Returns the tree and a manifest entry."""
+    path = config.lookup_path
+    geo = config.geography
+    try:
+        frame = pd.read_csv(path, dtype=str, keep_default_na=False)
+    except FileNotFoundError:
+        raise InputDataError(f"geography.lookup: file not found: {path}") from None
+    except (OSError, pd.errors.ParserError, UnicodeDecodeError) as exc:
+        raise InputDataError(f"geography.lookup: cannot read {path}: {exc}") from None
+    problems: list[str] = []
+    wanted = [c for lv in geo.levels for c in (lv.code, lv.name)]
+    if geo.population:
+        wanted.append(geo.population)
+    missing = [c for c in wanted if c not in frame.columns]
+    if missing:
+        raise InputDataError(f"geography.lookup: {path.name} lacks column(s) {missing}; "
+                             f"it has {list(frame.columns)}")
+    if frame.empty:
+        raise InputDataError(f"geography.lookup: {path.name} has no rows")
+    for lv in geo.levels:
+        empty = frame[lv.code].str.strip() == ""
+        if empty.any():
+            problems.append(f"geography.lookup: {int(empty.sum())} row(s) have an empty {lv.code!r} "
+                            f"(first at line {int(np.flatnonzero(empty)[0]) + 2})")
+        names_per_code = frame.groupby(lv.code)[lv.name].nunique()
+        for code in names_per_code[names_per_code > 1].index[:5]:
+            problems.append(f"geography.lookup: {lv.level} code {code!r} has more than one name in {lv.name!r}")
+    for upper, lower in zip(geo.levels, geo.levels[1:]):
+        parents = frame.groupby(lower.code)[upper.code].nunique()
+        for code in parents[parents > 1].index[:5]:
+            problems.append(f"geography.lookup: {lower.level} {code!r} has more than one parent {upper.level} "
+                            f"in {upper.code!r}; the lookup must be a tree")
+    finest = geo.levels[-1]
+    dupes = frame[finest.code].duplicated()
+    if dupes.any():
+        problems.append(f"geography.lookup: finest-level code {frame[finest.code][dupes].iloc[0]!r} appears "
+                        f"on {int(dupes.sum()) + 1} rows; each finest unit needs exactly one row")
+    population = None
+    if geo.population:
+        population = pd.to_numeric(frame[geo.population], errors="coerce").to_numpy(float)
+        bad = ~np.isfinite(population) | (population < 0)
+        if bad.any():
+            problems.append(f"geography.lookup: column {geo.population!r} must hold numbers >= 0; "
+                            f"row {int(np.flatnonzero(bad)[0]) + 2} has {frame[geo.population].iloc[int(np.flatnonzero(bad)[0])]!r}")
+    if problems:
+        raise InputDataError(f"geography.lookup: {path.name} is not a usable geography tree", problems)
+
+    order = np.lexsort([frame[lv.code].to_numpy() for lv in reversed(geo.levels)])
+    frame = frame.iloc[order].reset_index(drop=True)
+    codes, names, unit_index = {}, {}, {}
+    for lv in geo.levels:
+        level_codes, first = np.unique(frame[lv.code].to_numpy(), return_index=True)
+        # keep the tree order (codes sorted within their parents) rather than plain sort order
+        by_position = np.argsort(first)
+        codes[lv.level] = level_codes[by_position].astype(object)
+        names[lv.level] = frame[lv.name].to_numpy()[first[by_position]].astype(object)
+        unit_index[lv.level] = pd.Index(codes[lv.level]).get_indexer(frame[lv.code].to_numpy())
+    if population is not None:
+        population = population[order]
+    geography = Geography(levels=tuple(lv.level for lv in geo.levels), codes=codes, names=names,
+                          unit_index=unit_index, population=population)
+    return geography, describe_file(path, rows=len(frame))
+
+
+# --------------------------------------------------------------------------------------------
+# Microdata: planning, schema checks, batches
+
+
+@dataclass(frozen=True)
+class SourceFile:
+    path: Path
+    kind: str  # parquet | csv
+
+
+@dataclass
+class FileCount:
+    """Row reconciliation for one input file: read = accepted + rejected."""
+
+    path: Path
+    read: int = 0
+    accepted: int = 0
+    rejected: int = 0
+
+
+@dataclass
+class Batch:
+    """One validated batch: accepted rows (typed columns) and rejects (one row per failure)."""
+
+    frame: pd.DataFrame
+    rejects: pd.DataFrame
+    count: FileCount
+    rows_read: int
+    rows_rejected: int
+
+
+def needed_columns(config) -> list[str]:
+    """Exactly the columns the run reads, in a fixed order."""
+    cols = [config.source.record_id, config.geography.key, config.design.weight]
+    cols += config.replicate_columns
+    cols += list(config.source.variables)
+    return list(dict.fromkeys(cols))
+
+
+def plan_source(config) -> list[SourceFile]:
+    """Expand the source path (a glob reads several files, in sorted order) and check each file's
+    columns and types before any row is read, reporting every problem at once."""
+    pattern = str(config.source_path)
+    paths = sorted(Path(p) for p in glob.glob(pattern)) if glob.has_magic(pattern) else [Path(pattern)]
+    if not paths:
+        raise InputDataError(f"source.path: no file matches {pattern}")
+    files, problems = [], []
+    for path in paths:
+        kind = _file_kind(path)
+        if kind is None:
+            problems.append(f"source.path: {path.name}: unsupported file type; allowed: .parquet, .csv, .csv.gz")
+            continue
+        if not path.is_file():
+            problems.append(f"source.path: file not found: {path}")
+            continue
+        try:
+            schema = _read_schema(path, kind)
+        except InputDataError as exc:
+            problems.append(exc.message)
+            continue
+        problems += _check_columns(config, path, kind, schema)
+        files.append(SourceFile(path, kind))
+    if problems:
+        raise InputDataError("source: the input data cannot be read as declared", problems)
+    return files
+
+
+def _file_kind(path: Path) -> str | None:
+    name = path.name.lower()
+    if name.endswith(".parquet"):
+        return "parquet"
+    if name.endswith(".csv") or name.endswith(".csv.gz"):
+        return "csv"
+    return None
+
+
+def _read_schema(path: Path, kind: str) -> arrow.Schema:
+    try:
+        if kind == "parquet":
+            return pq.read_schema(path)
+        reader = arrow_csv.open_csv(path, read_options=arrow_csv.ReadOptions(block_size=SNIFF_BLOCK_BYTES))
+        return reader.schema
+    except arrow.ArrowInvalid as exc:
+        text = str(exc)
+        if "Empty CSV file" in text or "empty" in text.lower():
+            raise InputDataError(f"source.path: {path.name} is empty (no header line)") from None
+        raise InputDataError(f"source.path: {path.name} cannot be read: {text.splitlines()[0]}") from None
+    except OSError as exc:
+        raise InputDataError(f"source.path: {path.name} cannot be read: {exc}") from None
+
+
+def _column_roles(config) -> dict[str, tuple[str, str]]:
+    """column -> (key path that declares it, declared kind: integer | number | string | id | key)."""
+    roles = {config.source.record_id: ("source.record_id", "id"),
+             config.geography.key: ("geography.key", "key"),
+             config.design.weight: ("design.weight", "number")}
+    for col in config.replicate_columns:
+        roles[col] = ("design.replicates", "number")
+    for name, var in config.source.variables.items():
+        roles[name] = (f"source.variables.{name}", var.type)
+    return roles
+
+
+def _check_columns(config, path: Path, kind: str, schema: arrow.Schema) -> list[str]:
+    problems = []
+    present = set(schema.names)
+    roles = _column_roles(config)
+    missing = [c for c in roles if c not in present]
+    if missing:
+        shown = ", ".join(f"{c!r} ({roles[c][0]})" for c in missing[:10])
+        more = f" and {len(missing) - 10} more" if len(missing) > 10 else ""
+        problems.append(f"{path.name}: missing column(s) {shown}{more}")
+    if kind == "csv":
+        return problems  # CSV text is typed row by row; bad values become rejects
+    for col, (key_path, declared) in roles.items():
+        if col not in present:
+            continue
+        t = schema.field(col).type
+        if arrow.types.is_dictionary(t):
+            t = t.value_type
+        numeric = arrow.types.is_integer(t) or arrow.types.is_floating(t) or arrow.types.is_null(t)
+        textual = arrow.types.is_string(t) or arrow.types.is_large_string(t)
+        ok = {"integer": numeric, "number": numeric, "string": textual or numeric,
+              "id": textual or arrow.types.is_integer(t), "key": textual or arrow.types.is_integer(t)}[declared]
+        if not ok:
+            allowed = {"integer": "integer or floating", "number": "integer or floating",
+                       "string": "string", "id": "string or integer", "key": "string or integer"}[declared]
+            problems.append(f"{path.name}: column {col!r} has type {t} but {key_path} needs {allowed}")
+    return problems
+
+
+def iter_batches(config, files: list[SourceFile], geography: Geography) -> Iterator[Batch]:
+    """Read, type and validate every file batch by batch. Duplicate record ids are caught across
+    batches and files (the first occurrence is kept)."""
+    schema = build_row_schema(config, geography)
+    seen = SeenIds()
+    columns = needed_columns(config)
+    for source in files:
+        count = FileCount(source.path)
+        reader = _parquet_batches if source.kind == "parquet" else _csv_batches
+        for frame, malformed, first_row in reader(source.path, columns, config.source.batch_rows):
+            rejects = [malformed] if len(malformed) else []
+            frame, type_rejects = _coerce_types(config, frame)
+            rejects.append(type_rejects)
+            rejects.append(_schema_failures(schema, frame, config.source.record_id))
+            rejects.append(_duplicate_ids(frame, config.source.record_id, seen))
+            rejects = pd.concat([r for r in rejects if len(r)], ignore_index=True) if any(len(r) for r in rejects) \
+                else _empty_rejects()
+            bad_positions = rejects["_position"].dropna().astype(int).unique() if len(rejects) else []
+            keep = np.ones(len(frame), dtype=bool)
+            keep[np.asarray(bad_positions, dtype=int)] = False
+            rejects["source_file"] = source.path.name
+            rejects["row_number"] = np.where(rejects["_position"].notna(),
+                                             rejects["_position"].fillna(0) + first_row, rejects["row_number"])
+            rejects = rejects.drop(columns="_position")[REJECT_COLUMNS]
+            n_read = len(frame) + len(malformed)
+            n_rejected = int((~keep).sum()) + len(malformed)
+            count.read += n_read
+            count.rejected += n_rejected
+            count.accepted += n_read - n_rejected
+            yield Batch(frame=frame.loc[keep].reset_index(drop=True), rejects=rejects, count=count,
+                        rows_read=n_read, rows_rejected=n_rejected)
+        if count.read == 0:
+            raise InputDataError(f"source.path: {source.path.name} holds no records")
+
+
+def _empty_rejects() -> pd.DataFrame:
+    return pd.DataFrame({c: pd.Series(dtype=object) for c in REJECT_COLUMNS + ["_position"]})
+
+
+def _parquet_batches(path: Path, columns: list[str], batch_rows: int):
+    first_row = 1
+    try:
+        for record_batch in pq.ParquetFile(path).iter_batches(batch_size=batch_rows, columns=columns):
+            frame = record_batch.to_pandas()
+            yield frame, _empty_rejects(), first_row
+            first_row += len(frame)
+    except (arrow.ArrowException, OSError) as exc:
+        raise InputDataError(f"source.path: {path.name} cannot be read: {str(exc).splitlines()[0]}") from None
+
+
+def _csv_batches(path: Path, columns: list[str], batch_rows: int):
+    """CSV is read as text and typed in `_coerce_types`, so a bad value rejects one row instead of
+    failing the file. Lines with the wrong number of fields are set aside as malformed rows."""
+    malformed: list[dict] = []
+
+    def on_invalid_row(row) -> str:
+        malformed.append({"row_number": (row.number - 1) if row.number is not None else None,
+                          "record_id": None, "column": None, "rule": RejectReason.MALFORMED_ROW.value,
+                          "value": f"{row.actual_columns} fields, expected {row.expected_columns}: {row.text[:200]}",
+                          "_position": None})
+        return "skip"
+
+    # about batch_rows lines per block, assuming short lines; the block size only sets memory use
+    read_options = arrow_csv.ReadOptions(block_size=max(SNIFF_BLOCK_BYTES, min(batch_rows * 256, 1 << 28)),
+                                         use_threads=False)
+    convert = arrow_csv.ConvertOptions(include_columns=columns, column_types={c: arrow.string() for c in columns},
+                                       strings_can_be_null=True)
+    try:
+        reader = arrow_csv.open_csv(path, read_options=read_options, convert_options=convert,
+                                    parse_options=arrow_csv.ParseOptions(invalid_row_handler=on_invalid_row))
+        first_row = 1
+        for record_batch in reader:
+            frame = record_batch.to_pandas()
+            bad = pd.DataFrame(malformed, columns=REJECT_COLUMNS + ["_position"]) if malformed else _empty_rejects()
+            malformed.clear()
+            yield frame, bad, first_row
+            first_row += len(frame) + len(bad)
+    except (arrow.ArrowException, OSError) as exc:
+        raise InputDataError(f"source.path: {path.name} cannot be read: {str(exc).splitlines()[0]}") from None
+    if malformed:
+        yield pd.DataFrame(columns=columns), pd.DataFrame(malformed, columns=REJECT_COLUMNS + ["_position"]), first_row
+
+
+def _failure_rows(frame: pd.DataFrame, mask: np.ndarray, column: str, rule: RejectReason,
+                  id_column: str, values=None) -> pd.DataFrame:
+    positions = np.flatnonzero(mask)
+    shown = (values if values is not None else frame[column]).iloc[positions]
+    return pd.DataFrame({"row_number": None, "record_id": frame[id_column].iloc[positions].astype(str).to_numpy(),
+                         "column": column, "rule": rule.value, "value": shown.astype(str).to_numpy(),
+                         "_position": positions})
+
+
+def _coerce_types(config, frame: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Give every column its working type: numbers as float64 with NaN for missing, strings and
+    keys as Python str with None for missing. Text that is not a number becomes a reject."""
+    id_col = config.source.record_id
+    out = {}
+    failures = []
+    for col, (_, declared) in _column_roles(config).items():
+        s = frame[col]
+        if declared in ("integer", "number"):
+            if s.dtype.kind in "iufb":
+                values = pd.Series(s.to_numpy(dtype="float64", na_value=np.nan), index=frame.index)
+            else:
+                text = s.astype(object).where(s.notna(), None)
+                values = pd.to_numeric(pd.Series(text, dtype=object).str.strip(), errors="coerce").astype("float64")
+                bad = values.isna().to_numpy() & s.notna().to_numpy() & (s.astype(str).str.strip() != "").to_numpy()
+                if bad.any():
+                    failures.append(_failure_rows(frame, bad, col, RejectReason.NOT_A_NUMBER, id_col))
+            out[col] = values.to_numpy(dtype="float64", na_value=np.nan)
+        else:
+            text = s.astype(object)
+            out[col] = np.where(pd.isna(text), None, text.astype(str)).astype(object)
+    typed = pd.DataFrame(out, index=frame.index)
+    rejects = pd.concat(failures, ignore_index=True) if failures else _empty_rejects()
+    return typed, rejects
+
+
+# --------------------------------------------------------------------------------------------
+# Row rules: a pandera schema built from the config
+
+
+def build_row_schema(config, geography: Geography) -> pa.DataFrameSchema:
+    """Row rules as a pandera schema. Check names are RejectReason codes so that every failure
+    maps to a stable reason. Nulls are checked by `nullable`; other checks skip nulls."""
+    finite = np.isfinite
+    columns = {
+        config.source.record_id: pa.Column(nullable=False),
+        config.geography.key: pa.Column(nullable=False, checks=[
+            pa.Check(lambda s, codes=list(geography.finest_codes): s.isin(codes),
+                     name=RejectReason.UNKNOWN_GEOGRAPHY.value)]),
+        config.design.weight: pa.Column(nullable=False, checks=[
+            pa.Check(lambda s: finite(s) & (s > 0), name=RejectReason.WEIGHT_NOT_POSITIVE.value)]),
+    }
+    for col in config.replicate_columns:
+        columns[col] = pa.Column(nullable=False, checks=[
+            pa.Check(lambda s: finite(s) & (s >= 0), name=RejectReason.REPLICATE_WEIGHT_INVALID.value)])
+    for name, var in config.source.variables.items():
+        checks = []
+        if var.type == "integer":
+            checks.append(pa.Check(lambda s: finite(s) & (s == np.round(s)), name=RejectReason.NOT_AN_INTEGER.value))
+        if var.type in ("integer", "number") and (var.min is not None or var.max is not None):
+            lo = -np.inf if var.min is None else var.min
+            hi = np.inf if var.max is None else var.max
+            checks.append(pa.Check(lambda s, lo=lo, hi=hi: (s >= lo) & (s <= hi), name=RejectReason.OUT_OF_RANGE.value))
+        if var.values is not None:
+            allowed = list(var.values) if var.type == "string" else [float(v) for v in var.values]
+            checks.append(pa.Check(lambda s, allowed=allowed: s.isin(allowed), name=RejectReason.VALUE_NOT_ALLOWED.value))
+        columns[name] = pa.Column(nullable=var.missing == "allowed", checks=checks)
+    return pa.DataFrameSchema(columns, strict=False, coerce=False)
+
+
+_PANDERA_NULL_CHECK = "not_nullable"
+
+
+def _schema_failures(schema: pa.DataFrameSchema, frame: pd.DataFrame, id_column: str) -> pd.DataFrame:
+    """Apply the row schema lazily and turn pandera's failure cases into reject rows."""
+    if frame.empty:
+        return _empty_rejects()
+    try:
+        schema.validate(frame, lazy=True)
+        return _empty_rejects()
+    except pa.errors.SchemaErrors as exc:
+        cases = exc.failure_cases
+    cases = cases[cases["index"].notna()]
+    positions = cases["index"].astype(int).to_numpy()
+    rule = cases["check"].astype(str).map(
+        lambda c: RejectReason.MISSING_NOT_ALLOWED.value if c == _PANDERA_NULL_CHECK else c)
+    return pd.DataFrame({"row_number": None,
+                         "record_id": frame[id_column].iloc[positions].astype(str).to_numpy(),
+                         "column": cases["column"].astype(str).to_numpy(), "rule": rule.to_numpy(),
+                         "value": cases["failure_case"].astype(str).to_numpy(), "_position": positions})
+
+
+class SeenIds:
+    """Record ids seen so far, as sorted 64-bit keys (string ids are hashed). This is the one
+    structure that grows with the number of records: 8 bytes per record."""
+
+    def __init__(self):
+        self._keys = np.empty(0, dtype=np.uint64)
+
+    def mark(self, ids: pd.Series) -> np.ndarray:
+        """Record `ids`; return a mask of those seen before (earlier in this batch included)."""
+        if ids.dtype.kind in "iuf":
+            keys = ids.to_numpy().astype(np.int64).view(np.uint64)
+        else:
+            keys = pd.util.hash_array(ids.astype(str).to_numpy(dtype=object))
+        earlier = np.zeros(len(keys), dtype=bool)
+        if len(self._keys):
+            pos = np.searchsorted(self._keys, keys).clip(max=len(self._keys) - 1)
+            earlier = self._keys[pos] == keys
+        earlier |= pd.Series(keys).duplicated().to_numpy()
+        self._keys = np.union1d(self._keys, keys)
+        return earlier
+
+
+def _duplicate_ids(frame: pd.DataFrame, id_column: str, seen: SeenIds) -> pd.DataFrame:
+    ids = frame[id_column]
+    present = ids.notna().to_numpy()
+    dup = np.zeros(len(frame), dtype=bool)
+    dup[present] = seen.mark(ids[present])
+    if not dup.any():
+        return _empty_rejects()
+    return _failure_rows(frame, dup, id_column, RejectReason.DUPLICATE_RECORD_ID, id_column)
+
+
+# --------------------------------------------------------------------------------------------
+# Provenance
+
+
+def describe_file(path: Path, *, rows: int | None = None) -> dict:
+    """sha256, size and row count of an input, for the manifest."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            digest.update(chunk)
+    entry = {"path": str(path), "sha256": digest.hexdigest(), "bytes": path.stat().st_size}
+    if rows is not None:
+        entry["rows"] = rows
+    return entry
