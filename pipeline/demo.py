@@ -401,25 +401,26 @@ def _build_population(rng: np.random.Generator, geo: _Geography) -> _Population:
     # Characteristics: logistic models with area random effects and age effects. Household
     # items also get a block (neighbourhood) effect, which makes the cluster design matter.
     oldest = np.maximum.reduceat(age, household_first_person).astype(np.float64)
-    block_effect = rng.normal(0.0, 0.3, len(block_households))[household_block]
+    n_blocks = len(block_households)
+    block_effect = lambda sd: rng.normal(0.0, sd, n_blocks)[household_block]  # noqa: E731
     a = household_area  # per household
     pa_ = household_area[person_household]  # per person
     items: dict[str, np.ndarray] = {}
 
     lin = (-2.75 + 0.065 * np.maximum(oldest - 55, 0) - 0.3 * (household_size >= 3)
-           + _area_effects(rng, geo, 0.55)[a] + block_effect)
+           + _area_effects(rng, geo, 0.55)[a] + block_effect(0.3))
     no_connection = rng.random(n_households) < _expit(lin)
     lin = -1.3 + 0.02 * (45 - ref_age) + _area_effects(rng, geo, 0.5)[a]
     mobile_only = rng.random(n_households) < _expit(lin)
     internet = np.select([no_connection, mobile_only], [3, 2], 1).astype(np.int8)
 
     lin = (-0.4 + 0.045 * (ref_age - 30) - 0.4 * (household_size == 1)
-           + _area_effects(rng, geo, 0.45)[a] + block_effect)
+           + _area_effects(rng, geo, 0.45)[a] + block_effect(0.3))
     owner = rng.random(n_households) < _expit(lin)
     home_owner = np.where(owner, 1, 2).astype(np.int8)
 
     lin = (-0.35 - 1.1 * owner + 0.35 * (household_size == 1)
-           + _area_effects(rng, geo, 0.4)[a] + 0.5 * block_effect)
+           + _area_effects(rng, geo, 0.4)[a] + block_effect(0.2))
     housing_burden = _yes_no(_expit(lin), rng.random(n_households))
 
     for name, values in (("internet", internet), ("home_owner", home_owner),
@@ -435,7 +436,7 @@ def _build_population(rng: np.random.Generator, geo: _Geography) -> _Population:
     items["smoker"] = np.where(adult, smoker, 0).astype(np.int8)
 
     work_age = np.select([age < 20, age < 25, age < 55, age < 60], [-2.6, -0.8, 0.0, -0.7], -1.6)
-    lin = 0.95 + 0.35 * is_male + work_age + _area_effects(rng, geo, 0.35)[pa_]
+    lin = 0.85 + 0.35 * is_male + work_age + _area_effects(rng, geo, 0.35)[pa_]
     employed = _yes_no(_expit(lin), rng.random(n_persons))
     items["employed"] = np.where((age >= 15) & (age <= 64), employed, 0).astype(np.int8)
 
@@ -613,7 +614,8 @@ def _draw_sample(rng: np.random.Generator, pop: _Population, geo: _Geography,
     weight = _nonresponse_adjust(design_weight, weighting_class, responded, n_districts)
     factors = successive_difference_factors(len(blocks), replicates=REPLICATES)
     replicate_design = design_weight[:, None] * factors[cluster]
-    replicate_weights = weight[:, None] * factors[cluster]
+    replicate_weights = _nonresponse_adjust(replicate_design, weighting_class, responded,
+                                            n_districts)
     return _Sample(household=household, block=blocks[cluster], responded=responded,
                    weight=weight, replicate_weights=replicate_weights, n_blocks=len(blocks))
 

@@ -1,14 +1,15 @@
 """Tests for pipeline.demo: the fictional population and survey.
 
-The yardsticks are the brief's own specification of the demo (counts, codes, bands, cells) and
+The yardsticks are the demo specification (counts, codes, bands, cells) and
 results from sampling theory, each named beside its check:
 * Horvitz & Thompson (1952, JASA 47:663): with first-stage probabilities proportional to household
   counts and a fixed take per block, the weighted household count is exact (zero variance), and a
   ratio non-response adjustment within districts keeps each district's sum;
-* Fay & Train (1995): replicate variance (4/R)·Σ_r (θ̂_r − θ̂)² for successive-difference replicates;
+* Fay & Train (1995): replicate variance (4/R)·Σ_r (θ̂_r − θ̂)² for successive-difference
+  replicates;
 * the weighted estimator is design-unbiased, so estimates fall within a few standard errors of the
   truth (a normal-theory 4-SE bound fails with probability ~6e-5 per check).
-One default-size generation is used where the brief asks for it; the rest use 3000 persons.
+One default-size generation is used where the specification asks for it; the rest use 3000 persons.
 """
 
 from __future__ import annotations
@@ -33,7 +34,7 @@ COLUMNS = (["person_id", "household_id", "area", "stratum", "psu", "wt", "sex", 
 AREA_COLUMNS = ["nation_code", "nation_name", "region_code", "region_name", "district_code",
                 "district_name", "area_code", "area_name", "population", "households"]
 
-# From the brief: indicator -> (item column, code, min age, max age, prevalence band at nation).
+# From the specification: indicator -> (item column, code, min age, max age, prevalence band at nation).
 INDICATOR_SPEC = {
     "no_internet": ("internet", 3, 0, 200, (0.08, 0.15)),
     "smoker": ("smoker", 1, 15, 200, (0.20, 0.30)),
@@ -44,7 +45,7 @@ INDICATOR_SPEC = {
     "unmet_care": ("unmet_care", 1, 15, 200, (0.05, 0.12)),
     "addiction_treatment": ("addiction_treatment", 1, 15, 200, (0.01, 0.02)),
 }
-# From the brief: who each item applies to, for the item non-response shares.
+# From the specification: who each item applies to, for the item non-response shares.
 ITEM_UNIVERSE = {"internet": (0, 200), "smoker": (15, 200), "housing_burden": (0, 200),
                  "unmet_care": (15, 200)}
 HOUSEHOLD_ITEMS = ["internet", "home_owner", "housing_burden"]
@@ -158,7 +159,7 @@ def test_unknown_format_is_refused(tmp_path):
 def test_geography_counts_codes_and_tree(small):
     areas = small.areas
     assert list(areas.columns) == AREA_COLUMNS
-    # The brief: 1 nation, 5 regions, 30 districts, 300 areas, one row per area.
+    # The specification: 1 nation, 5 regions, 30 districts, 300 areas, one row per area.
     assert areas["nation_code"].nunique() == 1 and areas["nation_code"].iloc[0] == "VL"
     assert sorted(areas["region_code"].unique()) == [f"R{i}" for i in range(1, 6)]
     assert sorted(areas["district_code"].unique()) == [f"D{i:02d}" for i in range(1, 31)]
@@ -187,7 +188,7 @@ def test_names_are_unique_invented_words(small):
 def test_population_size_and_unequal_areas(small):
     areas = small.areas
     total = areas["population"].sum()
-    assert 1_500_000 <= total <= 3_000_000  # the brief: 1.5-3 million persons
+    assert 1_500_000 <= total <= 3_000_000  # the specification: 1.5-3 million persons
     assert (areas["households"] >= 1).all()
     # households of 1-7 persons
     assert (areas["population"] >= areas["households"]).all()
@@ -221,7 +222,7 @@ def test_microdata_values_and_structure(small):
     assert set(m["internet"].dropna().unique()) <= {1, 2, 3}
     for col in ITEMS[1:]:
         assert set(m[col].dropna().unique()) <= {1, 2}, col
-    # Structural nulls from the brief: smoker etc. only 15+, employed only 15-64.
+    # Structural nulls from the specification: smoker etc. only 15+, employed only 15-64.
     child = m["age"] < 15
     for col in ["smoker", "unmet_care", "addiction_treatment"]:
         assert m.loc[child, col].isna().all(), col
@@ -306,7 +307,7 @@ def test_item_nonresponse_shares(small):
     for item, (low, high) in ITEM_UNIVERSE.items():
         in_universe = m["age"].between(low, high)
         share = m.loc[in_universe, item].isna().mean()
-        assert 0.01 <= share <= 0.03, (item, share)  # the brief: 1-3%
+        assert 0.01 <= share <= 0.03, (item, share)  # the specification: 1-3%
 
 
 def test_sample_size_is_about_what_was_asked(small, default):
@@ -396,7 +397,7 @@ def test_truth_is_consistent_with_the_lookup_and_additive(small):
     overall = nation[(nation["sex"] == "all") & (nation["age_group"] == "all")]
     assert (by_age.groupby("indicator")["population_base"].sum().sort_index().to_numpy()
             == overall.set_index("indicator")["population_base"].sort_index().to_numpy()).all()
-    # Universes from the brief: the 0-14 group is empty for 15+ indicators, 65+ for employment.
+    # Universes from the specification: the 0-14 group is empty for 15+ indicators, 65+ for employment.
     for name in ["smoker", "employed", "unmet_care", "addiction_treatment"]:
         assert (nation.loc[(nation["indicator"] == name) & (nation["age_group"] == "0-14"),
                            "population_base"] == 0).all()

@@ -25,7 +25,7 @@ def _prime(n: int) -> bool:
 
 
 def _constructible(order: int) -> bool:
-    """The orders the brief promises: 2^k, or 2^k·(q+1) with q prime ≡ 3 (mod 4)."""
+    """The orders the module promises: 2^k, or 2^k·(q+1) with q prime ≡ 3 (mod 4)."""
     if order & (order - 1) == 0:
         return True
     while order % 2 == 0:
@@ -52,7 +52,7 @@ def test_supported_orders_give_a_normalised_hadamard_matrix(order):
     assert set(np.unique(h)) <= {-1, 1}  # definition (Hadamard 1893): entries ±1
     gram = h.astype(np.int64) @ h.T.astype(np.int64)
     np.testing.assert_array_equal(gram, order * np.eye(order, dtype=np.int64))  # H·Hᵀ = n·I
-    assert (h[0] == 1).all() and (h[:, 0] == 1).all()  # normalised, as the brief requires
+    assert (h[0] == 1).all() and (h[:, 0] == 1).all()  # normalised, as specified
 
 
 @pytest.mark.parametrize("order", UNSUPPORTED)

@@ -45,7 +45,7 @@ def public_estimates(frame: pd.DataFrame, config, domain_names) -> pd.DataFrame:
     step = config.disclosure.round_counts_to
     if step:
         for col in ("weighted_base", "weighted_count"):
-            out[col] = np.round(out[col].to_numpy() / step) * step
+            out[col] = np.floor(out[col].to_numpy() / step + 0.5) * step  # halves round up
     withheld = out["status"].to_numpy() == Status.SUPPRESSED.value
     for col in FIGURE_COLUMNS:
         out.loc[withheld, col] = np.nan
