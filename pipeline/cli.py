@@ -140,9 +140,14 @@ def _check(args) -> int:
 def _demo(args) -> int:
     from pipeline.demo import write_demo
 
+    from pipeline.errors import ConfigError
+
     started = time.perf_counter()
-    formats = tuple(args.format or ["parquet"])
-    summary = write_demo(Path(args.out), persons=args.persons, seed=args.seed, formats=formats)
+    formats = tuple(dict.fromkeys(args.format or ["parquet"]))
+    try:
+        summary = write_demo(Path(args.out), persons=args.persons, seed=args.seed, formats=formats)
+    except ValueError as exc:  # the generator validates its own arguments
+        raise ConfigError(f"demo: {exc}") from None
     print(f"demo survey written to {Path(args.out).resolve()} in {time.perf_counter() - started:.1f} s")
     print(f"  {summary}")
     return EXIT_OK
