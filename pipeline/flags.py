@@ -36,7 +36,8 @@ def reason_descriptions(config) -> dict[str, str]:
     basis = "effective sample size" if rel.expected_basis == "effective" else "sample size"
     action = "withheld" if rel.on_normal_approx_failure == "suppress" else "printed with a caution"
     return {
-        Reason.NO_SAMPLE.value: "No sampled record falls in this cell; there is no estimate.",
+        Reason.NO_SAMPLE.value: "No sampled record falls in this cell (or the cell lies outside the indicator's "
+                                "universe); there is no estimate.",
         Reason.SAMPLE_TOO_SMALL.value:
             f"Fewer than {rel.min_sample} sampled records in the base; the figure is withheld.",
         Reason.EXPECTED_COUNT_LOW.value:
