@@ -231,7 +231,8 @@ def _read_schema(path: Path, kind: str) -> arrow.Schema:
     try:
         if kind == "parquet":
             return pq.read_schema(path)
-        reader = arrow_csv.open_csv(path, read_options=arrow_csv.ReadOptions(block_size=SNIFF_BLOCK_BYTES))
+        reader = arrow_csv.open_csv(path, read_options=arrow_csv.ReadOptions(block_size=SNIFF_BLOCK_BYTES),
+                                    parse_options=arrow_csv.ParseOptions(invalid_row_handler=lambda row: "skip"))
         return reader.schema
     except arrow.ArrowInvalid as exc:
         text = str(exc)
@@ -291,7 +292,7 @@ def iter_batches(config, files: list[SourceFile], geography: Geography) -> Itera
     for source in files:
         count = FileCount(source.path)
         reader = _parquet_batches if source.kind == "parquet" else _csv_batches
-        for frame, malformed, first_row in reader(source.path, columns, config.source.batch_rows):
+        for frame, malformed, row_numbers in reader(source.path, columns, config.source.batch_rows):
             rejects = [malformed] if len(malformed) else []
             frame, type_rejects = _coerce_types(config, frame)
             rejects.append(type_rejects)
@@ -303,8 +304,10 @@ def iter_batches(config, files: list[SourceFile], geography: Geography) -> Itera
             keep = np.ones(len(frame), dtype=bool)
             keep[np.asarray(bad_positions, dtype=int)] = False
             rejects["source_file"] = source.path.name
-            rejects["row_number"] = np.where(rejects["_position"].notna(),
-                                             rejects["_position"].fillna(0) + first_row, rejects["row_number"])
+            positioned = rejects["_position"].notna().to_numpy()
+            file_rows = rejects["row_number"].to_numpy(dtype=object).copy()
+            file_rows[positioned] = row_numbers[rejects["_position"][positioned].astype(int).to_numpy()]
+            rejects["row_number"] = pd.array(file_rows, dtype="Int64")
             rejects = rejects.drop(columns="_position")[REJECT_COLUMNS]
             n_read = len(frame) + len(malformed)
             n_rejected = int((~keep).sum()) + len(malformed)
@@ -322,11 +325,12 @@ def _empty_rejects() -> pd.DataFrame:
 
 
 def _parquet_batches(path: Path, columns: list[str], batch_rows: int):
+    """Yields (frame, malformed-row rejects, the 1-based file row number of each frame row)."""
     first_row = 1
     try:
         for record_batch in pq.ParquetFile(path).iter_batches(batch_size=batch_rows, columns=columns):
             frame = record_batch.to_pandas()
-            yield frame, _empty_rejects(), first_row
+            yield frame, _empty_rejects(), np.arange(first_row, first_row + len(frame))
             first_row += len(frame)
     except (arrow.ArrowException, OSError) as exc:
         raise InputDataError(f"source.path: {path.name} cannot be read: {str(exc).splitlines()[0]}") from None
@@ -338,7 +342,8 @@ def _csv_batches(path: Path, columns: list[str], batch_rows: int):
     malformed: list[dict] = []
 
     def on_invalid_row(row) -> str:
-        malformed.append({"row_number": (row.number - 1) if row.number is not None else None,
+        known = row.number is not None and row.number > 0  # physical line number; the header is line 1
+        malformed.append({"row_number": row.number - 1 if known else None,
                           "record_id": None, "column": None, "rule": RejectReason.MALFORMED_ROW.value,
                           "value": f"{row.actual_columns} fields, expected {row.expected_columns}: {row.text[:200]}",
                           "_position": None})
@@ -349,6 +354,7 @@ def _csv_batches(path: Path, columns: list[str], batch_rows: int):
                                          use_threads=False)
     convert = arrow_csv.ConvertOptions(include_columns=columns, column_types={c: arrow.string() for c in columns},
                                        strings_can_be_null=True)
+    skipped: list[int] = []  # data-row numbers of every malformed line seen so far
     try:
         reader = arrow_csv.open_csv(path, read_options=read_options, convert_options=convert,
                                     parse_options=arrow_csv.ParseOptions(invalid_row_handler=on_invalid_row))
@@ -356,13 +362,24 @@ def _csv_batches(path: Path, columns: list[str], batch_rows: int):
         for record_batch in reader:
             frame = record_batch.to_pandas()
             bad = pd.DataFrame(malformed, columns=REJECT_COLUMNS + ["_position"]) if malformed else _empty_rejects()
+            skipped += [r["row_number"] for r in malformed]
             malformed.clear()
-            yield frame, bad, first_row
-            first_row += len(frame) + len(bad)
+            row_numbers = _rows_skipping(first_row, len(frame), skipped)
+            yield frame, bad, row_numbers
+            first_row = int(row_numbers[-1]) + 1 if len(row_numbers) else first_row
     except (arrow.ArrowException, OSError) as exc:
         raise InputDataError(f"source.path: {path.name} cannot be read: {str(exc).splitlines()[0]}") from None
     if malformed:
-        yield pd.DataFrame(columns=columns), pd.DataFrame(malformed, columns=REJECT_COLUMNS + ["_position"]), first_row
+        yield (pd.DataFrame(columns=columns), pd.DataFrame(malformed, columns=REJECT_COLUMNS + ["_position"]),
+               np.empty(0, dtype=np.int64))
+
+
+def _rows_skipping(first_row: int, count: int, skipped: list[int]) -> np.ndarray:
+    """The `count` data-row numbers from `first_row` on, passing over malformed lines (which the
+    CSV reader dropped from the batch), so that rejects name the row as it stands in the file."""
+    later = np.array([r for r in skipped if r is not None and r >= first_row], dtype=np.int64)
+    candidates = np.arange(first_row, first_row + count + len(later))
+    return candidates[~np.isin(candidates, later)][:count]
 
 
 def _failure_rows(frame: pd.DataFrame, mask: np.ndarray, column: str, rule: RejectReason,
@@ -413,12 +430,14 @@ def build_row_schema(config, geography: Geography) -> pa.DataFrameSchema:
         config.geography.key: pa.Column(nullable=False, checks=[
             pa.Check(lambda s, codes=list(geography.finest_codes): s.isin(codes),
                      name=RejectReason.UNKNOWN_GEOGRAPHY.value)]),
-        config.design.weight: pa.Column(nullable=False, checks=[
-            pa.Check(lambda s: finite(s) & (s > 0), name=RejectReason.WEIGHT_NOT_POSITIVE.value)]),
+        # weights: nullable here so that a missing weight fails the weight rule itself (ignore_na=False)
+        config.design.weight: pa.Column(nullable=True, checks=[
+            pa.Check(lambda s: finite(s) & (s > 0), name=RejectReason.WEIGHT_NOT_POSITIVE.value, ignore_na=False)]),
     }
     for col in config.replicate_columns:
-        columns[col] = pa.Column(nullable=False, checks=[
-            pa.Check(lambda s: finite(s) & (s >= 0), name=RejectReason.REPLICATE_WEIGHT_INVALID.value)])
+        columns[col] = pa.Column(nullable=True, checks=[
+            pa.Check(lambda s: finite(s) & (s >= 0), name=RejectReason.REPLICATE_WEIGHT_INVALID.value,
+                     ignore_na=False)])
     for name, var in config.source.variables.items():
         checks = []
         if var.type == "integer":
@@ -457,11 +476,15 @@ def _schema_failures(schema: pa.DataFrameSchema, frame: pd.DataFrame, id_column:
 
 
 class SeenIds:
-    """Record ids seen so far, as sorted 64-bit keys (string ids are hashed). This is the one
-    structure that grows with the number of records: 8 bytes per record."""
+    """Record ids seen so far, as sorted runs of 64-bit keys (string ids are hashed). This is the
+    one structure that grows with the number of records: 8 bytes per record. New keys form a new
+    sorted run; runs are merged when there are many, so a batch costs O(batch · log N) to check
+    rather than a re-sort of everything seen."""
+
+    MAX_RUNS = 8
 
     def __init__(self):
-        self._keys = np.empty(0, dtype=np.uint64)
+        self._runs: list[np.ndarray] = []
 
     def mark(self, ids: pd.Series) -> np.ndarray:
         """Record `ids`; return a mask of those seen before (earlier in this batch included)."""
@@ -469,12 +492,14 @@ class SeenIds:
             keys = ids.to_numpy().astype(np.int64).view(np.uint64)
         else:
             keys = pd.util.hash_array(ids.astype(str).to_numpy(dtype=object))
-        earlier = np.zeros(len(keys), dtype=bool)
-        if len(self._keys):
-            pos = np.searchsorted(self._keys, keys).clip(max=len(self._keys) - 1)
-            earlier = self._keys[pos] == keys
-        earlier |= pd.Series(keys).duplicated().to_numpy()
-        self._keys = np.union1d(self._keys, keys)
+        earlier = pd.Series(keys).duplicated().to_numpy().copy()
+        for run in self._runs:
+            pos = np.searchsorted(run, keys).clip(max=len(run) - 1)
+            earlier |= run[pos] == keys
+        if len(keys):
+            self._runs.append(np.sort(keys))
+        if len(self._runs) > self.MAX_RUNS:
+            self._runs = [np.sort(np.concatenate(self._runs))]
         return earlier
 
 
