@@ -38,7 +38,7 @@ class RejectReason(str, Enum):
     MISSING_NOT_ALLOWED = "missing_not_allowed"      # empty where missing: forbidden
     OUT_OF_RANGE = "out_of_range"                    # outside the declared min/max
     VALUE_NOT_ALLOWED = "value_not_allowed"          # not among the declared values
-    DUPLICATE_RECORD_ID = "duplicate_record_id"      # the record id was seen before (first kept)
+    DUPLICATE_RECORD_ID = "duplicate_record_id"      # the record id was on an earlier row
     UNKNOWN_GEOGRAPHY = "unknown_geography"          # geography key not in the lookup
     WEIGHT_NOT_POSITIVE = "weight_not_positive"      # weight missing, infinite or <= 0
     REPLICATE_WEIGHT_INVALID = "replicate_weight_invalid"  # replicate weight missing, infinite or < 0
@@ -51,7 +51,8 @@ REJECT_DESCRIPTIONS = {
     RejectReason.MISSING_NOT_ALLOWED: "the value is missing but the column does not allow missing values",
     RejectReason.OUT_OF_RANGE: "the value is outside the declared min/max",
     RejectReason.VALUE_NOT_ALLOWED: "the value is not one of the declared values",
-    RejectReason.DUPLICATE_RECORD_ID: "the record id appeared earlier in the input; the first record is kept",
+    RejectReason.DUPLICATE_RECORD_ID: "the record id appeared on an earlier row of the input (accepted or not); "
+                                      "only the earliest row with an id can be accepted",
     RejectReason.UNKNOWN_GEOGRAPHY: "the geography key is not a code of the finest level of the lookup",
     RejectReason.WEIGHT_NOT_POSITIVE: "the weight is missing, not finite or not greater than 0",
     RejectReason.REPLICATE_WEIGHT_INVALID: "a replicate weight is missing, not finite or negative",
@@ -296,7 +297,12 @@ def iter_batches(config, files: list[SourceFile], geography: Geography) -> Itera
             rejects = [malformed] if len(malformed) else []
             frame, type_rejects = _coerce_types(config, frame)
             rejects.append(type_rejects)
-            rejects.append(_schema_failures(schema, frame, config.source.record_id))
+            schema_failures = _schema_failures(schema, frame, config.source.record_id)
+            if len(type_rejects):  # text that is not a number is reported once, not again as missing
+                already = set(zip(type_rejects["_position"], type_rejects["column"]))
+                schema_failures = schema_failures[[(p, c) not in already for p, c in
+                                                   zip(schema_failures["_position"], schema_failures["column"])]]
+            rejects.append(schema_failures)
             rejects.append(_duplicate_ids(frame, config.source.record_id, seen))
             rejects = pd.concat([r for r in rejects if len(r)], ignore_index=True) if any(len(r) for r in rejects) \
                 else _empty_rejects()
