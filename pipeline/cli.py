@@ -30,9 +30,13 @@ def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(prog="ratebook", description="Publish survey proportions with design-based intervals, "
                                                   "reliability flags and disclosure control.")
     parser.add_argument("--version", action="version", version=f"ratebook {__version__}")
+    # --debug and --quiet work before or after the command; SUPPRESS keeps a subcommand's default
+    # from overwriting a flag given before it
     common = argparse.ArgumentParser(add_help=False)
-    common.add_argument("--debug", action="store_true", help="show a traceback on errors")
-    common.add_argument("--quiet", action="store_true", help="print only errors and the final summary")
+    for flags_parser, default in ((parser, False), (common, argparse.SUPPRESS)):
+        flags_parser.add_argument("--debug", action="store_true", default=default, help="show a traceback on errors")
+        flags_parser.add_argument("--quiet", action="store_true", default=default,
+                                  help="print only errors and the final summary")
     sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
     run = sub.add_parser("run", parents=[common], help="run the whole pipeline and publish a release")

@@ -415,3 +415,16 @@ def test_a_killed_run_leaves_the_previous_release_and_latest_untouched(released,
     assert (out / "latest").read_text().strip() == "killed"
     assert sorted(p.name for p in out.iterdir() if p.is_dir()) == ["baseline", "killed"]
     assert tree(out / "baseline") == previous
+
+
+def test_flags_work_before_or_after_the_command(tmp_path):
+    # DESIGN §3: errors are one line without a traceback unless --debug, wherever the flag stands
+    import subprocess
+    import sys
+
+    missing = str(tmp_path / "absent.yaml")
+    for argv in (["--debug", "run", missing], ["run", missing, "--debug"]):
+        done = subprocess.run([sys.executable, "-m", "pipeline", *argv], capture_output=True, text=True)
+        assert done.returncode == 2 and "Traceback" in done.stderr, argv
+    done = subprocess.run([sys.executable, "-m", "pipeline", "run", missing], capture_output=True, text=True)
+    assert done.returncode == 2 and "Traceback" not in done.stderr and "absent.yaml" in done.stderr

@@ -16,13 +16,14 @@ the formula, on valid cells only.
 
 from __future__ import annotations
 
-import difflib
 from dataclasses import dataclass
 from enum import Enum
 from typing import Callable
 
 import numpy as np
 from scipy import special, stats
+
+from pipeline.methods import lookup_member
 
 __all__ = [
     "Interval",
@@ -237,15 +238,7 @@ def z_value(confidence: float) -> float:
 
 
 def _lookup_method(method: str) -> IntervalMethod:
-    try:
-        return IntervalMethod(method)
-    except ValueError:
-        allowed = sorted(m.value for m in IntervalMethod)
-        message = f"unknown interval method {method!r}; allowed: {', '.join(allowed)}"
-        close = difflib.get_close_matches(str(method), allowed, n=1)
-        if close:
-            message += f"; did you mean {close[0]!r}?"
-        raise ValueError(message) from None
+    return lookup_member(IntervalMethod, method, what="interval method")
 
 
 def _as_float(name: str, values, shape: tuple[int, ...]) -> np.ndarray:

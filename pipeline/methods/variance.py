@@ -12,13 +12,14 @@ multipliers (e.g. (n_h − 1)/n_h for a stratified jackknife) are already carrie
 
 from __future__ import annotations
 
-import difflib
 import math
 from dataclasses import dataclass
 from enum import Enum
 from typing import Callable
 
 import numpy as np
+
+from pipeline.methods import lookup_member
 
 __all__ = [
     "REPLICATE_DESCRIPTIONS",
@@ -137,15 +138,7 @@ REPLICATE_DESCRIPTIONS: dict[str, str] = {
 
 
 def _lookup_replicate(method: str) -> ReplicateMethod:
-    try:
-        return ReplicateMethod(method)
-    except ValueError:
-        allowed = sorted(m.value for m in ReplicateMethod)
-        message = f"unknown replicate method {method!r}; allowed: {', '.join(allowed)}"
-        close = difflib.get_close_matches(str(method), allowed, n=1)
-        if close:
-            message += f"; did you mean {close[0]!r}?"
-        raise ValueError(message) from None
+    return lookup_member(ReplicateMethod, method, what="replicate method")
 
 
 def replicate_scale(
