@@ -26,8 +26,7 @@ from pipeline.methods.intervals import IntervalMethod
 from pipeline.methods.variance import ReplicateMethod
 
 NAME_PATTERN = r"^[a-z][a-z0-9_]*$"
-# korn_graubard needs the design degrees of freedom, which the estimate stage does not carry yet
-AVAILABLE_INTERVALS = [m.value for m in IntervalMethod if m is not IntervalMethod.KORN_GRAUBARD]
+AVAILABLE_INTERVALS = [m.value for m in IntervalMethod]
 RELEASE_NAME_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9._-]*$"
 
 
@@ -83,6 +82,7 @@ class ReplicatesConfig(_Model):
 
 
 class DesignConfig(_Model):
+    degrees_of_freedom: int | None = Field(default=None, ge=1)
     weight: str
     variance: Literal["simple_random", "kish", "replicate"]
     replicates: ReplicatesConfig | None = None
@@ -133,7 +133,7 @@ class ReliabilityConfig(_Model):
     on_normal_approx_failure: Literal["suppress", "caution"] = "suppress"
     cv_caution: float = Field(default=0.30, gt=0)
     cv_suppress: float = Field(default=0.50, gt=0)
-    standard: Literal["custom"] = "custom"
+    standard: Literal["custom", "nchs_2017"] = "custom"
 
 
 class DisclosureConfig(_Model):
@@ -498,6 +498,10 @@ def _check_references(s: RatebookConfig) -> list[str]:
             problems += _choice(f"{path}.down_to", table.down_to, levels)
 
     rel = s.reliability
+    if rel.standard == "nchs_2017" and (s.estimation.interval != "korn_graubard" or s.estimation.confidence != 0.95):
+        problems.append(f"reliability.standard: 'nchs_2017' judges the Korn–Graubard 95% interval; set "
+                        f"estimation.interval: korn_graubard (now {s.estimation.interval!r}) and "
+                        f"estimation.confidence: 0.95 (now {s.estimation.confidence:g})")
     if rel.cv_caution > rel.cv_suppress:
         problems.append(f"reliability.cv_caution ({rel.cv_caution:g}) must not exceed "
                         f"reliability.cv_suppress ({rel.cv_suppress:g})")

@@ -28,6 +28,10 @@ class Reason(str, Enum):
     CV_HIGH = "cv_high"
     CV_TOO_HIGH = "cv_too_high"
     FEW_RESPONDENTS = "few_respondents"
+    EFFECTIVE_N_TOO_SMALL = "effective_n_too_small"
+    CI_TOO_WIDE = "ci_too_wide"
+    DF_LOW = "df_low"
+    ESTIMATE_AT_BOUNDARY = "estimate_at_boundary"
 
 
 def reason_descriptions(config) -> dict[str, str]:
@@ -47,6 +51,16 @@ def reason_descriptions(config) -> dict[str, str]:
             f"Coefficient of variation of at least {rel.cv_caution:.0%}; the figure is imprecise, use with caution.",
         Reason.CV_TOO_HIGH.value:
             f"Coefficient of variation of at least {rel.cv_suppress:.0%}; the figure is too unreliable to print.",
+        Reason.EFFECTIVE_N_TOO_SMALL.value:
+            "Effective sample size under 30 (NCHS standard, Parker et al. 2017); the figure is withheld.",
+        Reason.CI_TOO_WIDE.value:
+            "The 95% confidence interval is 30 percentage points wide or more, or wider than 5 points "
+            "and more than 130% of the estimate (NCHS standard, Parker et al. 2017); withheld.",
+        Reason.DF_LOW.value:
+            "Fewer than 8 design degrees of freedom; the interval may be unstable. Flagged for review "
+            "(NCHS standard, Parker et al. 2017).",
+        Reason.ESTIMATE_AT_BOUNDARY.value:
+            "The estimate is 0 or 1; flagged for review (NCHS standard, Parker et al. 2017).",
         Reason.FEW_RESPONDENTS.value:
             f"Fewer than {dis.min_respondents} sampled persons have, or lack, the characteristic; "
             "withheld so that no respondent can be singled out.",

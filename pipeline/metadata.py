@@ -61,18 +61,33 @@ def column_descriptions(config, domain_names) -> dict[str, str]:
     return cols
 
 
+def _variance_text(config) -> str:
+    design = config.design
+    if design.variance == "simple_random":
+        return ("p̂q̂/n (simple random sampling), times the finite population correction (1 − n/N) where "
+                "the geography lookup gives the population N and the sample exceeds 10% of it (common "
+                "practice); N is known only for cells whose domains are all 'all', and for an indicator "
+                "with a narrower universe it is an upper bound, so the correction is conservative")
+    if design.variance == "kish":
+        return "p̂q̂/n_eff with n_eff = (Σw)²/Σw² (Kish 1992, J. Official Statistics 8:183)"
+    reps = design.replicates
+    return (f"Replicate weights {reps.prefix}1..{reps.prefix}{reps.count}, method {reps.method}: "
+            f"{variance.REPLICATE_DESCRIPTIONS[reps.method]}")
+
+
+def _degrees_of_freedom_text(config) -> str:
+    design = config.design
+    if design.degrees_of_freedom is not None:
+        return f"{design.degrees_of_freedom}, as set in design.degrees_of_freedom"
+    return {"simple_random": "n − 1", "kish": "n − 1",
+            "replicate": "R − 1 (number of replicates minus one; common practice)"}[design.variance]
+
+
 def build_metadata(config, domain_names) -> dict:
     s = config.settings
     rel, dis, est = s.reliability, s.disclosure, s.estimation
     design = s.design
-    variance_method = {"simple_random": "p̂q̂/n (simple random sampling; no finite population correction applied)",
-                       "kish": "p̂q̂/n_eff with n_eff = (Σw)²/Σw² (Kish 1992, J. Official Statistics 8:183)"}
-    if design.variance == "replicate":
-        reps = design.replicates
-        variance_text = (f"Replicate weights {reps.prefix}1..{reps.prefix}{reps.count}, method "
-                         f"{reps.method}: {variance.REPLICATE_DESCRIPTIONS[reps.method]}")
-    else:
-        variance_text = variance_method[design.variance]
+    variance_text = _variance_text(config)
     return {
         "release": {"name": s.release.name, "title": s.release.title, "publisher": s.release.publisher,
                     "description": s.release.description.strip()},
@@ -89,6 +104,7 @@ def build_metadata(config, domain_names) -> dict:
             "estimate": "p̂ = Σw·y / Σw over the records of the base (ratio estimator).",
             "variance": variance_text,
             "weight": design.weight,
+            "degrees_of_freedom": _degrees_of_freedom_text(config),
             "interval": {"name": est.interval, "confidence": est.confidence,
                          "description": intervals.METHOD_DESCRIPTIONS[est.interval],
                          "sample_size_used": "effective sample size (equal to the sample size under simple random sampling)"},
@@ -98,7 +114,13 @@ def build_metadata(config, domain_names) -> dict:
                                 "leaves that indicator's base (it is not counted as 'no').",
         },
         "thresholds": {
-            "reliability": rel.model_dump(),
+            "reliability": rel.model_dump() if rel.standard == "custom" else {
+                "standard": "nchs_2017",
+                "description": "NCHS Data Presentation Standards for Proportions (Parker et al. 2017, Vital "
+                               "Health Stat 2(175)): Korn–Graubard 95% interval; withheld when the effective "
+                               "sample size is under 30, the interval is 30 points wide or more, or wider than "
+                               "5 points and more than 130% of the estimate; flagged for review when the "
+                               "degrees of freedom are under 8 or the estimate is 0 or 1."},
             "disclosure": dis.model_dump(),
         },
         "indicators": {name: ind.model_dump() for name, ind in s.indicators.items()},

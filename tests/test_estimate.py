@@ -78,3 +78,43 @@ def test_empty_cell_has_no_figures(tmp_path):
     out = estimate(table([(0, 0, 0.0, 0.0, 0.0)]), config).iloc[0]
     for col in ("estimate", "std_error", "ci_lower", "ci_upper", "margin_of_error", "cv", "design_effect"):
         assert np.isnan(out[col]), col
+
+
+def test_simple_random_finite_population_correction(tmp_path):
+    # Common practice: correct by (1 − n/N) only when the sample exceeds 10% of the population
+    # (Cochran 1977, Sampling Techniques, ch. 3); N unknown (NaN) means no correction.
+    config = config_with(tmp_path, variance="simple_random")
+    rows = [(100, 40, 100.0, 40.0, 100.0)] * 3
+    cells = table(rows)
+    cells.frame["population"] = [500.0, 2000.0, np.nan]  # n/N = 20%, 5%, unknown
+    out = estimate(cells, config)
+    srs = 0.4 * 0.6 / 100
+    np.testing.assert_allclose(out["variance"], [srs * (1 - 100 / 500), srs, srs], rtol=1e-12)
+
+
+def test_degrees_of_freedom_by_method(tmp_path):
+    rows = [(50, 17, 100.0, 35.0, 250.0)]
+    reps = np.full((1, 4), 100.0), np.full((1, 4), 35.0)
+    assert estimate(table(rows), config_with(tmp_path, variance="kish"))["degrees_of_freedom"].iloc[0] == 49
+    rep_config = config_with(tmp_path, variance="replicate",
+                             replicates={"prefix": "rw", "count": 4, "method": "jackknife_delete1"})
+    assert estimate(table(rows, *reps), rep_config)["degrees_of_freedom"].iloc[0] == 3
+    fixed = config_with(tmp_path, variance="kish", degrees_of_freedom=12)
+    assert estimate(table(rows), fixed)["degrees_of_freedom"].iloc[0] == 12
+
+
+def test_korn_graubard_through_the_stage(tmp_path):
+    # Korn & Graubard 1998: Clopper–Pearson on n* = n_eff (t_{n−1}/t_df)², x* = p̂ n*;
+    # computed here straight from scipy's t and beta quantiles.
+    from scipy.stats import beta, t
+
+    settings = demo_settings()
+    settings["design"] = {"weight": "wt", "variance": "kish", "degrees_of_freedom": 20}
+    settings["estimation"]["interval"] = "korn_graubard"
+    config = load_config(write_config(tmp_path / "kg.yaml", settings))
+    out = estimate(table([(100, 30, 200.0, 70.0, 550.0)]), config).iloc[0]
+    n_eff = 200.0 ** 2 / 550.0
+    n_star = n_eff * (t.ppf(0.975, 99) / t.ppf(0.975, 20)) ** 2
+    x_star = 0.35 * n_star
+    assert out["ci_lower"] == pytest.approx(beta.ppf(0.025, x_star, n_star - x_star + 1), rel=1e-10)
+    assert out["ci_upper"] == pytest.approx(beta.ppf(0.975, x_star + 1, n_star - x_star), rel=1e-10)

@@ -205,7 +205,7 @@ def extras_for(method: str) -> dict:
 
 
 @pytest.mark.parametrize("method", ["wilson", "wilson_cc", "clopper_pearson", "jeffreys",
-                                    "korn_graubard"])
+                                    "korn_graubard", "logit"])
 def test_x_zero_gives_lower_zero_and_x_n_gives_upper_one(method):
     # Exact equality, not approximate: published tables print 0.0000 / 1.0000 and rules that
     # test "lower == 0" must see it (DESIGN.md §4).
@@ -328,3 +328,41 @@ def test_every_method_is_registered_and_described():
     assert {"wald", "wilson", "clopper_pearson"} <= set(METHOD_DESCRIPTIONS)
     assert all(len(text) > 20 and "\n" not in text for text in METHOD_DESCRIPTIONS.values())
     assert "clipped" in METHOD_DESCRIPTIONS["wald"]
+
+
+# --- Logit ---------------------------------------------------------------------------------------
+
+
+def test_logit_is_a_wald_interval_on_the_log_odds_scale():
+    # Published form (Korn & Graubard 1999, Analysis of Health Surveys, §3.2): the bounds are
+    # expit(logit(p̂) ± z·SE/(p̂q̂)); so on the logit scale they sit symmetrically about logit(p̂)
+    # with half-width z/√(n p̂ q̂) when SE = √(p̂q̂/n). Computed here with scipy.special directly.
+    from scipy.special import expit, logit
+    from scipy.stats import norm
+
+    p = np.array([0.05, 0.3, 0.5, 0.81])
+    n = np.array([40.0, 263.0, 12.5, 1000.0])
+    iv = proportion_interval(p, n, method="logit", confidence=0.90)
+    half = norm.ppf(0.95) / np.sqrt(n * p * (1 - p))
+    np.testing.assert_allclose(iv.lower, expit(logit(p) - half), rtol=1e-12)
+    np.testing.assert_allclose(iv.upper, expit(logit(p) + half), rtol=1e-12)
+
+
+def test_logit_uses_the_design_standard_error():
+    p, n, se = np.array([0.2]), np.array([100.0]), np.array([0.06])
+    iv = proportion_interval(p, n, method="logit", std_error=se)
+    from scipy.special import logit
+
+    z = 1.959963984540054  # Φ⁻¹(0.975), from memory; checked by test_z_value_matches_normal_quantile
+    assert logit(iv.upper[0]) - logit(0.2) == pytest.approx(z * 0.06 / (0.2 * 0.8), rel=1e-9)
+
+
+def test_logit_at_the_boundary_takes_clopper_pearson():
+    # p̂ = 0 or 1 has infinite log-odds; the documented fallback is the exact interval on n_eff.
+    n = np.array([20.0, 20.0])
+    p = np.array([0.0, 1.0])
+    logit_iv = proportion_interval(p, n, method="logit")
+    exact = proportion_interval(p, n, method="clopper_pearson")
+    np.testing.assert_array_equal(logit_iv.lower, exact.lower)
+    np.testing.assert_array_equal(logit_iv.upper, exact.upper)
+    assert logit_iv.upper[0] == pytest.approx(0.1684, abs=5e-5)  # Newcombe 1998 Table I, 0/20

@@ -281,3 +281,40 @@ def test_design_effect_and_effective_n_edges():
 def test_every_replicate_method_is_described():
     assert set(REPLICATE_DESCRIPTIONS) == {m.value for m in ReplicateMethod}
     assert all(len(text) > 20 and "\n" not in text for text in REPLICATE_DESCRIPTIONS.values())
+
+
+# --- Stratified jackknife and bootstrap ---------------------------------------------------------
+
+
+def test_stratified_jackknife_equals_its_definition_on_a_mean():
+    # Two strata of 3 and 4 clusters, each a single record with value y; the delete-one-cluster
+    # stratified jackknife of the weighted mean with multipliers (n_h−1)/n_h (Wolter 2007, ch. 4)
+    # equals, for a stratified total, Σ_h (n_h/(n_h−1))·Σ_i (t_hi − t̄_h)² scaled to the mean.
+    rng = np.random.default_rng(11)
+    strata = np.array([0, 0, 0, 1, 1, 1, 1])
+    y = rng.uniform(0, 1, 7)
+    w = np.array([2.0, 2.0, 2.0, 3.0, 3.0, 3.0, 3.0])
+    n_h = np.bincount(strata)
+    reps, mult = [], []
+    for i in range(7):
+        h = strata[i]
+        wr = w.copy()
+        same = strata == h
+        wr[same] *= n_h[h] / (n_h[h] - 1)
+        wr[i] = 0.0
+        reps.append((wr * y).sum() / wr.sum())
+        mult.append((n_h[h] - 1) / n_h[h])
+    p = (w * y).sum() / w.sum()
+    v = replicate_variance([p], np.array([reps]), method="jackknife_stratified", multipliers=mult)[0]
+    direct = sum(mult[i] * (reps[i] - p) ** 2 for i in range(7))
+    assert v == pytest.approx(direct, rel=1e-12)
+    with pytest.raises(ValueError, match="needs multipliers"):
+        replicate_variance([p], np.array([reps]), method="jackknife_stratified")
+
+
+def test_bootstrap_is_centred_on_the_replicate_mean():
+    # Classic bootstrap variance: (1/(R−1)) Σ (θ_r − θ̄)² — numpy's var with ddof=1 (Efron 1979).
+    rng = np.random.default_rng(5)
+    reps = rng.uniform(0.2, 0.4, size=(3, 50))
+    v = replicate_variance([0.3, 0.31, 0.29], reps, method="bootstrap")
+    np.testing.assert_allclose(v, reps.var(axis=1, ddof=1), rtol=1e-12)

@@ -47,6 +47,7 @@ class IntervalMethod(str, Enum):
     CLOPPER_PEARSON = "clopper_pearson"
     AGRESTI_COULL = "agresti_coull"
     JEFFREYS = "jeffreys"
+    LOGIT = "logit"
     KORN_GRAUBARD = "korn_graubard"
 
 
@@ -155,6 +156,22 @@ def _jeffreys(c: _Cells) -> tuple[np.ndarray, np.ndarray]:
     return _beta_limits(c.p, c.alpha, x + 0.5, n - x + 0.5, x + 0.5, n - x + 0.5)
 
 
+def _logit(c: _Cells) -> tuple[np.ndarray, np.ndarray]:
+    # Wald interval on the log-odds scale, back-transformed: logit(p̂) ± z·SE/(p̂q̂), SE the design
+    # standard error (delta method; Korn & Graubard 1999, Analysis of Health Surveys, §3.2).
+    # At p̂ = 0 or 1 the log-odds are infinite, so those cells take the Clopper–Pearson bounds
+    # on the same n_eff (lower 0 at p̂ = 0, upper 1 at p̂ = 1).
+    p = c.p
+    inside = (p > 0.0) & (p < 1.0)
+    safe_p = np.where(inside, p, 0.5)
+    se = c.std_error if c.std_error is not None else np.sqrt(safe_p * (1.0 - safe_p) / c.n)
+    half = c.z * se / (safe_p * (1.0 - safe_p))
+    centre = special.logit(safe_p)
+    cp_lower, cp_upper = _clopper_pearson(c)
+    return (np.where(inside, special.expit(centre - half), cp_lower),
+            np.where(inside, special.expit(centre + half), cp_upper))
+
+
 def _korn_graubard(c: _Cells) -> tuple[np.ndarray, np.ndarray]:
     # Korn & Graubard 1998 (Survey Methodology 24:193): Clopper–Pearson on the degrees-of-freedom
     # adjusted effective size n* = n_eff·(t_{n−1}/t_{df})², x* = p̂·n*, n the records in the base.
@@ -205,6 +222,11 @@ _METHODS: dict[IntervalMethod, _Method] = {
         _jeffreys,
         "equal-tailed Beta(x+½, n−x+½) interval, x = p̂·n_eff, lower 0 at x = 0, upper 1 at x = n "
         "(Brown, Cai & DasGupta 2001 Stat. Sci. 16:101)",
+    ),
+    IntervalMethod.LOGIT: _Method(
+        _logit,
+        "expit(logit(p̂) ± z·SE/(p̂q̂)), SE the design standard error; at p̂ = 0 or 1 the "
+        "Clopper–Pearson bounds on n_eff (Korn & Graubard 1999, Analysis of Health Surveys)",
     ),
     IntervalMethod.KORN_GRAUBARD: _Method(
         _korn_graubard,

@@ -96,6 +96,8 @@ class ReplicateMethod(str, Enum):
     BRR = "brr"
     FAY = "fay"
     CUSTOM = "custom"
+    JACKKNIFE_STRATIFIED = "jackknife_stratified"
+    BOOTSTRAP = "bootstrap"
 
 
 @dataclass(frozen=True)
@@ -103,6 +105,9 @@ class _Replicate:
     scale: Callable[[int, float | None, float | None], float]  # (R, fay_rho, factor) -> scale
     description: str
     options: tuple[str, ...] = ()  # which of fay_rho / factor the method requires
+    needs_multipliers: bool = False
+    # squared deviations from p̂ ("estimate") or from the mean of the replicate estimates
+    centre: str = "estimate"
 
 
 _REPLICATE_METHODS: dict[ReplicateMethod, _Replicate] = {
@@ -129,6 +134,19 @@ _REPLICATE_METHODS: dict[ReplicateMethod, _Replicate] = {
         "v = factor · Σ_r m_r (p̂_r − p̂)², factor and per-replicate multipliers m_r supplied "
         "with the replicate weights",
         options=("factor",),
+    ),
+    ReplicateMethod.JACKKNIFE_STRATIFIED: _Replicate(
+        lambda r, rho, f: 1.0,
+        "v = Σ_r ((n_h−1)/n_h) (p̂_r − p̂)², one cluster deleted per replicate, n_h the clusters of "
+        "that replicate's stratum, the multipliers (n_h−1)/n_h supplied per replicate "
+        "(Wolter 2007, Introduction to Variance Estimation, ch. 4)",
+        needs_multipliers=True,
+    ),
+    ReplicateMethod.BOOTSTRAP: _Replicate(
+        lambda r, rho, f: 1.0 / (r - 1.0),
+        "v = (1/(R−1)) Σ_r (p̂_r − p̄)², p̄ the mean of the replicate estimates: the bootstrap "
+        "variance about the replicate mean (Rao & Wu 1988, JASA 83:231; Efron 1979)",
+        centre="replicate_mean",
     ),
 }
 
@@ -207,6 +225,9 @@ def replicate_variance(
         )
     r = reps.shape[1]
     scale = replicate_scale(method, replicates=r, fay_rho=fay_rho, factor=factor)
+    spec = _REPLICATE_METHODS[_lookup_replicate(method)]
+    if spec.needs_multipliers and multipliers is None:
+        raise ValueError(f"replicate method {method!r} needs multipliers, one per replicate")
     if multipliers is None:
         m = np.ones(r)
     else:
@@ -215,7 +236,13 @@ def replicate_variance(
             raise ValueError(f"multipliers has shape {m.shape}; expected ({r},), one per replicate")
         if not np.all(np.isfinite(m) & (m >= 0)):
             raise ValueError("multipliers must be finite and >= 0")
-    squared = np.nan_to_num((reps - p[:, None]) ** 2, nan=0.0, posinf=np.inf)
+    if spec.centre == "replicate_mean":
+        finite = np.isfinite(reps)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            centre = np.where(finite, reps, 0.0).sum(axis=1) / finite.sum(axis=1)
+    else:
+        centre = p
+    squared = np.nan_to_num((reps - centre[:, None]) ** 2, nan=0.0, posinf=np.inf)
     v = scale * (squared @ m)
     return np.where(np.isfinite(p), v, np.nan)
 

@@ -112,9 +112,28 @@ def roll_up(acc: CellAccumulator, config, geography: Geography, layout: DomainLa
         frame[name] = values[:, j]
     for name in ("sample_size", "respondents", "item_nonresponse"):
         frame[name] = np.rint(frame[name]).astype(np.int64)
+    if geography.population is not None:
+        frame["population"] = _population_of_whole_units(frame, geography, layout)
     rep_base = values[:, n_scalar: n_scalar + R] if has_reps else None
     rep_count = values[:, n_scalar + R:] if has_reps else None
     return CellTable(frame=frame, replicate_base=rep_base, replicate_count=rep_count)
+
+
+def _population_of_whole_units(frame: pd.DataFrame, geography: Geography, layout: DomainLayout) -> np.ndarray:
+    """The lookup's population of the geography unit for cells whose every domain is 'all'; NaN
+    for domain cells, whose population the lookup does not give. For an indicator whose universe
+    is narrower than everyone this is an upper bound, so a correction based on it is conservative."""
+    out = np.full(len(frame), np.nan)
+    whole = np.ones(len(frame), dtype=bool)
+    for name in layout.names:
+        whole &= frame[name].to_numpy() == "all"
+    for level in geography.levels:
+        per_unit = np.bincount(geography.unit_index[level], weights=geography.population,
+                               minlength=len(geography.codes[level]))
+        rows = whole & (frame["geo_level"].to_numpy() == level)
+        position = pd.Index(geography.codes[level]).get_indexer(frame["geo_code"].to_numpy()[rows])
+        out[rows] = per_unit[position]
+    return out
 
 
 def _keys(indicator: str, level: str, geography: Geography, layout: DomainLayout, by_axes: list[int]) -> pd.DataFrame:

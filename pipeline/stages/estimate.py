@@ -22,11 +22,13 @@ def estimate(cells: CellTable, config) -> pd.DataFrame:
     v = cell_variance(cells, config, p_hat=p_hat, n=n)
     se = np.sqrt(v)
     n_eff = variance.effective_n(v, p_hat, n)
+    df = cell_degrees_of_freedom(cells, config, n=n)
     est = config.estimation
     interval = intervals.proportion_interval(p_hat, n_eff, method=est.interval, confidence=est.confidence,
-                                             std_error=se)
+                                             std_error=se, df=df, sample_size=n)
     f["estimate"] = p_hat
     f["variance"] = v
+    f["degrees_of_freedom"] = df
     f["std_error"] = se
     f["ci_lower"] = interval.lower
     f["ci_upper"] = interval.upper
@@ -42,7 +44,8 @@ def cell_variance(cells: CellTable, config, *, p_hat: np.ndarray, n: np.ndarray)
     """Variance of p̂ by the configured method; NaN where the cell has no sample."""
     method = config.design.variance
     if method == "simple_random":
-        v = variance.srs_variance(p_hat, n)
+        # finite population correction where the lookup gives the population and n/N > 10%
+        v = variance.srs_variance(p_hat, n, population_size=cells.frame.get("population"))
     elif method == "kish":
         v = variance.kish_variance(p_hat, cells.frame["weighted_base"].to_numpy(),
                                    cells.frame["sum_squared_weights"].to_numpy())
@@ -54,3 +57,21 @@ def cell_variance(cells: CellTable, config, *, p_hat: np.ndarray, n: np.ndarray)
     else:  # the config only admits the methods above
         raise AssertionError(f"design.variance {method!r} has no estimator")
     return np.where(n > 0, v, np.nan)
+
+
+def cell_degrees_of_freedom(cells: CellTable, config, *, n: np.ndarray) -> np.ndarray:
+    """Design degrees of freedom per cell (for Korn–Graubard and the df review rule):
+    design.degrees_of_freedom when given; n − 1 for simple_random and kish; R − 1 for replicate
+    weights (common practice for replicate designs; set design.degrees_of_freedom to the
+    design's own value, e.g. clusters − strata, where it is known)."""
+    design = config.design
+    method = design.variance
+    if design.degrees_of_freedom is not None:
+        df = np.full(len(n), float(design.degrees_of_freedom))
+    elif method in ("simple_random", "kish"):
+        df = n - 1.0
+    elif method == "replicate":
+        df = np.full(len(n), float(design.replicates.count - 1))
+    else:  # the config only admits the methods above
+        raise AssertionError(f"design.variance {method!r} has no degrees of freedom")
+    return np.where(n > 0, df, np.nan)
