@@ -423,6 +423,9 @@ def _check_references(s: RatebookConfig) -> list[str]:
                 problems.append(f"design.replicates.factor: only used with method 'custom', not {reps.method!r}")
             if reps.method == "custom" and (reps.factor is None or reps.factor <= 0):
                 problems.append(f"design.replicates.factor: {reps.factor!r} must be > 0 for method 'custom'")
+            if reps.method == "jackknife_stratified" and reps.multipliers is None:
+                problems.append("design.replicates.multipliers: required for method 'jackknife_stratified' "
+                                "((n_h − 1)/n_h for each replicate, n_h the clusters of its stratum)")
             if reps.multipliers is not None and len(reps.multipliers) != reps.count:
                 problems.append(f"design.replicates.multipliers: {len(reps.multipliers)} given; "
                                 f"one per replicate ({reps.count}) is needed")

@@ -120,3 +120,8 @@ def test_missing_file_and_bad_yaml(tmp_path):
     bad.write_text("release: [unclosed\n")
     with pytest.raises(ConfigError, match="not valid YAML"):
         load_config(bad)
+
+
+def test_stratified_jackknife_needs_multipliers(tmp_path):
+    text = problems_of(tmp_path, lambda s: s["design"]["replicates"].update(method="jackknife_stratified"))
+    assert "design.replicates.multipliers" in text
