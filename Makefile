@@ -3,7 +3,7 @@ PYTHON ?= python3
 VENV   := .venv
 BIN    := $(VENV)/bin
 
-.PHONY: demo test check clean
+.PHONY: demo test check coverage clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -26,6 +26,11 @@ test: $(VENV)/.installed-test
 
 check: $(VENV)/.installed
 	$(BIN)/ratebook check configs/demo.yaml
+
+# Coverage study of the intervals on the demo design (about 10 minutes on 2 cores; not part of
+# `make test`, which runs a small version). Needs the test extras for matplotlib.
+coverage: $(VENV)/.installed-test
+	$(BIN)/python -m pipeline.coverage --samples 500 --persons 40000 --workers 2 --out data/out/coverage
 
 clean:
 	rm -rf $(VENV) data/out/* data/raw/demo_* .pytest_cache

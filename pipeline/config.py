@@ -23,7 +23,7 @@ from pydantic_core import PydanticCustomError
 from pipeline.errors import ConfigError, ExpressionError
 from pipeline.expressions import CompiledExpression, compile_expression
 from pipeline.methods.intervals import IntervalMethod
-from pipeline.methods.variance import ReplicateMethod
+from pipeline.methods.variance import ReplicateMethod, SingleClusterStrata
 
 NAME_PATTERN = r"^[a-z][a-z0-9_]*$"
 AVAILABLE_INTERVALS = [m.value for m in IntervalMethod]
@@ -81,11 +81,21 @@ class ReplicatesConfig(_Model):
     multipliers: list[float] | None = None
 
 
+class LinearizationConfig(_Model):
+    """Microdata columns of the sampling design for Taylor linearization (DESIGN §4)."""
+
+    strata: str | None = None                # none: the whole sample is one stratum
+    clusters: str                            # first-stage sampling units, numbered within strata or not
+    population_clusters: str | None = None   # N_h per record's stratum: first-stage fpc (1 − n_h/N_h)
+    single_cluster_strata: Annotated[str, AfterValidator(_one_of([m.value for m in SingleClusterStrata]))] = "error"
+
+
 class DesignConfig(_Model):
     degrees_of_freedom: int | None = Field(default=None, ge=1)
     weight: str
-    variance: Literal["simple_random", "kish", "replicate"]
+    variance: Literal["simple_random", "kish", "replicate", "linearization"]
     replicates: ReplicatesConfig | None = None
+    linearization: LinearizationConfig | None = None
 
 
 class DomainConfig(_Model):
@@ -373,6 +383,33 @@ def _compile_indicators(s: RatebookConfig, problems: list[str]):
     return universes, conditions
 
 
+def _check_linearization(s: RatebookConfig) -> list[str]:
+    """design.linearization when design.variance is 'linearization': present, and each design
+    column in one role only (a column shared with the weight, the id, the geography key, another
+    design role or an analysis variable is almost always a typo)."""
+    lin = s.design.linearization
+    if lin is None:
+        return ["design.linearization: required when design.variance is 'linearization' "
+                "(clusters; optional strata, population_clusters, single_cluster_strata)"]
+    problems: list[str] = []
+    taken = {s.source.record_id: "source.record_id", s.design.weight: "design.weight",
+             s.geography.key: "geography.key"}
+    for key in ("strata", "clusters", "population_clusters"):
+        column = getattr(lin, key)
+        if column is None:
+            continue
+        path = f"design.linearization.{key}"
+        if key == "strata" and column == s.geography.key:
+            continue  # strata that are the finest geographic units: a common, sensible design
+        if column in taken:
+            problems.append(f"{path}: column {column!r} is already used as {taken[column]}; a column may have one role")
+        elif column in s.source.variables:
+            problems.append(f"{path}: column {column!r} is also declared in source.variables; "
+                            "declare only analysis columns there")
+        taken[column] = path
+    return problems
+
+
 def _check_references(s: RatebookConfig) -> list[str]:
     problems: list[str] = []
     variables = s.source.variables
@@ -434,6 +471,11 @@ def _check_references(s: RatebookConfig) -> list[str]:
     elif design.replicates is not None:
         problems.append(f"design.replicates: given but design.variance is {design.variance!r}; "
                         "set variance: replicate or remove the section")
+    if design.variance == "linearization":
+        problems += _check_linearization(s)
+    elif design.linearization is not None:
+        problems.append(f"design.linearization: given but design.variance is {design.variance!r}; "
+                        "set variance: linearization or remove the section")
 
     for name, dom in s.domains.items():
         path = f"domains.{name}"

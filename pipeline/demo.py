@@ -6,9 +6,13 @@ a stratified two-stage household survey of them with 80 successive-difference re
 
     generate_demo(persons=..., seed=...) -> DemoData      frames in memory, no files
     write_demo(out_dir, persons=..., seed=..., formats=...) -> DemoSummary
+    build_population(seed) -> DemoPopulation             the population, lookup and truth, once
+    draw_survey(population, seed=..., persons=...) -> microdata frame of one sample
 
 Same seed, same frames and byte-identical files. The population depends on the seed only, never on
-`persons`, so the truth is the same for every sample size drawn from it.
+`persons`, so the truth is the same for every sample size drawn from it. `generate_demo(seed=s)`
+is `draw_survey(build_population(s), seed=s)`; other sample seeds give further independent samples
+of the same design from the same population (what a coverage study needs).
 
 Design of the survey (all probabilities are exact, so weights are exact inverses):
 
@@ -49,6 +53,7 @@ __all__ = [
     "DEMO_FILES",
     "DemoData",
     "DemoIndicator",
+    "DemoPopulation",
     "DemoSummary",
     "GEO_LEVELS",
     "INDICATORS",
@@ -56,6 +61,8 @@ __all__ = [
     "REPLICATES",
     "SEX_AGE_DOWN_TO",
     "SEX_LABELS",
+    "build_population",
+    "draw_survey",
     "generate_demo",
     "write_demo",
 ]
@@ -653,6 +660,10 @@ def _microdata(rng: np.random.Generator, pop: _Population, geo: _Geography,
         "area": pd.array(codes_area[area], dtype="str"),
         "stratum": pd.array(codes_district[geo.area_district[area]], dtype="str"),
         "psu": sample.block[sample.responded][row_household].astype(np.int64) + 1,
+        # N_h, the blocks of the record's district in the population frame, so that the
+        # first-stage finite population correction (1 − n_h/N_h) can be applied. Draws nothing.
+        "psu_count": np.bincount(geo.area_district[pop.block_area],
+                                 minlength=len(geo.district_codes))[geo.area_district[area]].astype(np.int64),
         "wt": hh_weight[row_household].astype(np.float64),
         "sex": pop.sex[person].astype(np.int8),
         "age": age.astype(np.int16),
@@ -766,6 +777,77 @@ def _check_count(value, name: str) -> int:
     return int(value)
 
 
+def _check_seed(seed) -> int:
+    seed = _check_count(seed, "seed")
+    if seed < 0:
+        raise ValueError(f"seed ({seed}) must be a non-negative integer")
+    return seed
+
+
+def _check_persons(persons) -> int:
+    persons = _check_count(persons, "persons")
+    if persons < _MIN_PERSONS:
+        raise ValueError(f"persons ({persons}) must be at least {_MIN_PERSONS}: every one of the "
+                         f"30 districts takes at least {_MIN_BLOCKS_PER_STRATUM} blocks")
+    return persons
+
+
+def _streams(seed: int) -> tuple[np.random.Generator, np.random.Generator, np.random.Generator]:
+    """(population, sample, item non-response) generators of a seed. Independent streams, so the
+    population does not depend on the sample size, and the population of one seed can be sampled
+    with the sample streams of any other seed."""
+    population_rng, sample_rng, item_rng = (
+        np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(3))
+    return population_rng, sample_rng, item_rng
+
+
+@dataclass(frozen=True)
+class DemoPopulation:
+    """The fictional population of one seed, built once and sampled as often as wanted.
+
+    areas and truth are the frames `generate_demo` returns for this seed (they do not depend on
+    the sample). The geography and population arrays are private to this module.
+    """
+
+    seed: int
+    areas: pd.DataFrame
+    truth: pd.DataFrame
+    _geography: _Geography
+    _population: _Population
+
+
+def build_population(seed: int = 20261202) -> DemoPopulation:
+    """Build the population of `seed` (any non-negative integer) with its lookup and truth."""
+    seed = _check_seed(seed)
+    population_rng, _, _ = _streams(seed)
+    geo = _build_geography()
+    pop = _build_population(population_rng, geo)
+    return DemoPopulation(seed=seed, areas=_areas_frame(pop, geo), truth=_truth_frame(pop, geo),
+                          _geography=geo, _population=pop)
+
+
+def _draw(population: DemoPopulation, seed: int, persons: int) -> tuple[pd.DataFrame, _Sample]:
+    _, sample_rng, item_rng = _streams(seed)
+    geo, pop = population._geography, population._population
+    sample = _draw_sample(sample_rng, pop, geo, persons)
+    return _microdata(item_rng, pop, geo, sample), sample
+
+
+def draw_survey(population: DemoPopulation, *, seed: int, persons: int = 40_000) -> pd.DataFrame:
+    """Draw one sample of the demo design from `population` and return its microdata (the
+    columns `write_demo` describes).
+
+    seed: any non-negative integer choosing the sample; the population's own seed gives exactly
+    the microdata of `generate_demo` for that seed, every other seed an independent sample.
+    persons: about how many responding persons (at least 1000).
+    """
+    if not isinstance(population, DemoPopulation):
+        raise TypeError(f"population ({type(population).__name__}) must be a DemoPopulation "
+                        "from build_population")
+    microdata, _ = _draw(population, _check_seed(seed), _check_persons(persons))
+    return microdata
+
+
 def generate_demo(*, persons: int = 40_000, seed: int = 20261202) -> DemoData:
     """Build the fictional population, draw the survey from it and return the frames (no files).
 
@@ -773,23 +855,15 @@ def generate_demo(*, persons: int = 40_000, seed: int = 20261202) -> DemoData:
     limit, several hundred thousand, is set by the population). seed: any non-negative integer;
     the same seed always gives identical frames.
     """
-    persons = _check_count(persons, "persons")
-    seed = _check_count(seed, "seed")
-    if persons < _MIN_PERSONS:
-        raise ValueError(f"persons ({persons}) must be at least {_MIN_PERSONS}: every one of the "
-                         f"30 districts takes at least {_MIN_BLOCKS_PER_STRATUM} blocks")
-    if seed < 0:
-        raise ValueError(f"seed ({seed}) must be a non-negative integer")
-    # Independent streams, so the population does not depend on the sample size.
-    population_rng, sample_rng, item_rng = (
-        np.random.default_rng(s) for s in np.random.SeedSequence(seed).spawn(3))
-    geo = _build_geography()
-    pop = _build_population(population_rng, geo)
-    sample = _draw_sample(sample_rng, pop, geo, persons)
+    # Arguments are checked before the population is built, so a bad call fails at once.
+    persons = _check_persons(persons)
+    seed = _check_seed(seed)
+    population = build_population(seed)
+    microdata, sample = _draw(population, seed, persons)
     return DemoData(
-        microdata=_microdata(item_rng, pop, geo, sample),
-        areas=_areas_frame(pop, geo),
-        truth=_truth_frame(pop, geo),
+        microdata=microdata,
+        areas=population.areas,
+        truth=population.truth,
         selected_clusters=sample.n_blocks,
         selected_households=len(sample.household),
     )
@@ -822,8 +896,8 @@ def write_demo(out_dir, *, persons: int = 40_000, seed: int = 20261202,
 
     Files: demo_persons.parquet and/or demo_persons.csv (as `formats` asks; nulls are empty CSV
     fields), demo_areas.csv (the geography lookup) and demo_truth.parquet (true proportions).
-    Microdata columns: person_id, household_id, area, stratum, psu, wt, sex, age, internet,
-    smoker, employed, home_owner, housing_burden, chronic, unmet_care, addiction_treatment
+    Microdata columns: person_id, household_id, area, stratum, psu, psu_count (N_h, blocks of the
+    district in the population frame), wt, sex, age, internet, smoker, employed, home_owner, housing_burden, chronic, unmet_care, addiction_treatment
     (nullable Int8), rw1..rw80. The same seed writes byte-identical files.
     """
     if isinstance(formats, str):

@@ -70,6 +70,8 @@ def _variance_text(config) -> str:
                 "with a narrower universe it is an upper bound, so the correction is conservative")
     if design.variance == "kish":
         return "p̂q̂/n_eff with n_eff = (Σw)²/Σw² (Kish 1992, J. Official Statistics 8:183)"
+    if design.variance == "linearization":
+        return _linearization_text(design.linearization)
     reps = design.replicates
     return (f"Replicate weights {reps.prefix}1..{reps.prefix}{reps.count}, method {reps.method}: "
             f"{variance.REPLICATE_DESCRIPTIONS[reps.method]}")
@@ -80,7 +82,23 @@ def _degrees_of_freedom_text(config) -> str:
     if design.degrees_of_freedom is not None:
         return f"{design.degrees_of_freedom}, as set in design.degrees_of_freedom"
     return {"simple_random": "n − 1", "kish": "n − 1",
-            "replicate": "R − 1 (number of replicates minus one; common practice)"}[design.variance]
+            "replicate": "R − 1 (number of replicates minus one; common practice)",
+            "linearization": "per cell, the clusters minus the strata that hold records of the cell's base "
+                             "(at least 1)"}[design.variance]
+
+
+def _linearization_text(lin) -> str:
+    strata = f"strata {lin.strata!r}" if lin.strata else "one stratum (no strata given)"
+    fpc = (f"f_h = n_h/N_h with N_h from column {lin.population_clusters!r} (first-stage finite population "
+           "correction)" if lin.population_clusters else "f_h = 0 (no finite population correction)")
+    return ("Taylor linearization (Woodruff 1971, JASA 66:411; Binder 1983, Int. Statistical Review 51:279): "
+            "u_i = w_i (y_i − p̂)/Σw for records in the cell's base and 0 for every other record, summed to "
+            "cluster totals u_hi; v = Σ_h (1 − f_h) · n_h/(n_h − 1) · Σ_i (u_hi − ū_h)², clusters treated as "
+            f"drawn with replacement within strata. Design: {strata}, clusters {lin.clusters!r}, {fpc}. "
+            "n_h counts the sampled clusters of stratum h in the whole sample (clusters with at least one "
+            "accepted record); domains keep every cluster, the data are never subset. Strata with one "
+            f"sampled cluster ({lin.single_cluster_strata}): "
+            f"{variance.SINGLE_CLUSTER_DESCRIPTIONS[lin.single_cluster_strata]}.")
 
 
 def build_metadata(config, domain_names) -> dict:

@@ -29,7 +29,7 @@ DEFAULT_SEED = 20261202
 R = 80
 ITEMS = ["internet", "smoker", "employed", "home_owner", "housing_burden", "chronic",
          "unmet_care", "addiction_treatment"]
-COLUMNS = (["person_id", "household_id", "area", "stratum", "psu", "wt", "sex", "age"] + ITEMS
+COLUMNS = (["person_id", "household_id", "area", "stratum", "psu", "psu_count", "wt", "sex", "age"] + ITEMS
            + [f"rw{r}" for r in range(1, R + 1)])
 AREA_COLUMNS = ["nation_code", "nation_name", "region_code", "region_name", "district_code",
                 "district_name", "area_code", "area_name", "population", "households"]
@@ -203,7 +203,7 @@ def test_population_size_and_unequal_areas(small):
 def test_microdata_columns_and_dtypes(small):
     m = small.microdata
     assert list(m.columns) == COLUMNS
-    for col in ["person_id", "household_id", "psu"]:
+    for col in ["person_id", "household_id", "psu", "psu_count"]:
         assert m[col].dtype == np.int64, col
     for col in ["wt"] + [f"rw{r}" for r in range(1, R + 1)]:
         assert m[col].dtype == np.float64, col

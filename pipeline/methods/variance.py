@@ -18,16 +18,21 @@ from enum import Enum
 from typing import Callable
 
 import numpy as np
+from scipy import sparse
 
 from pipeline.methods import lookup_member
 
 __all__ = [
     "REPLICATE_DESCRIPTIONS",
     "ReplicateMethod",
+    "SINGLE_CLUSTER_DESCRIPTIONS",
+    "LinearizationVariance",
+    "SingleClusterStrata",
     "design_effect",
     "effective_n",
     "kish_effective_n",
     "kish_variance",
+    "linearization_variance",
     "replicate_estimates",
     "replicate_scale",
     "replicate_variance",
@@ -245,6 +250,192 @@ def replicate_variance(
     squared = np.nan_to_num((reps - centre[:, None]) ** 2, nan=0.0, posinf=np.inf)
     v = scale * (squared @ m)
     return np.where(np.isfinite(p), v, np.nan)
+
+
+# ---------------------------------------------------------------------------------------------
+# Taylor linearization for stratified cluster samples (DESIGN.md §4).
+
+
+class SingleClusterStrata(str, Enum):
+    """What to do with a stratum that holds one sampled cluster, where n_h/(n_h − 1) is
+    undefined. Stable names (values appear in configs and metadata)."""
+
+    ERROR = "error"
+    SKIP = "skip"
+    GRAND_MEAN = "grand_mean"
+    COLLAPSE = "collapse"
+
+
+SINGLE_CLUSTER_DESCRIPTIONS: dict[str, str] = {
+    SingleClusterStrata.ERROR.value:
+        "a stratum with one sampled cluster stops the run: its variance contribution cannot be "
+        "estimated from one cluster",
+    SingleClusterStrata.SKIP.value:
+        "a stratum with one sampled cluster contributes nothing, so the variance of every cell "
+        "holding records there is understated",
+    SingleClusterStrata.GRAND_MEAN.value:
+        "the lone cluster's total u_hi deviates from the mean of all cluster totals of the sample, "
+        "ū = Σ u_hi / (all clusters): (1 − f_h)·(u_hi − ū)², without the n_h/(n_h − 1) factor",
+    SingleClusterStrata.COLLAPSE.value:
+        "each stratum with one sampled cluster is merged with the neighbouring stratum in sorted "
+        "stratum order (the next one; the previous one for the last) and the merged strata are "
+        "treated as one stratum (collapsed strata, Wolter 2007, Introduction to Variance "
+        "Estimation, 2nd ed., ch. 2); this tends to overstate the variance",
+}
+
+
+@dataclass(frozen=True)
+class LinearizationVariance:
+    """Result of `linearization_variance`, row-aligned with the cells.
+
+    variance: v(p̂) per cell; NaN where the cell has no base record.
+    degrees_of_freedom: clusters − strata that hold base records of the cell, at least 1; NaN
+        where the cell has no base record.
+    variance_stratum: (strata,) the stratum each input stratum is counted in, numbered 0.. in
+        stratum order: its own unless `collapse` merged it with a neighbour.
+    single_cluster_strata: positions of the input strata with one sampled cluster.
+    """
+
+    variance: np.ndarray
+    degrees_of_freedom: np.ndarray
+    variance_stratum: np.ndarray
+    single_cluster_strata: np.ndarray
+
+
+def _as_csr(values, name: str) -> sparse.csr_matrix:
+    matrix = sparse.csr_matrix(values if sparse.issparse(values) else np.asarray(values, dtype=float),
+                               dtype=np.float64, copy=True)
+    matrix.sum_duplicates()
+    if matrix.ndim != 2:
+        raise ValueError(f"{name} must be 2-D (cells, clusters)")
+    if not np.all(np.isfinite(matrix.data)):
+        raise ValueError(f"{name} must be finite")
+    return matrix
+
+
+def linearization_variance(
+    weighted_count,
+    weighted_base,
+    *,
+    cluster_stratum,
+    population_clusters=None,
+    single_cluster_strata: str = "error",
+    stratum_labels=None,
+) -> LinearizationVariance:
+    """Taylor-linearization variance of the ratio p̂ = Σwy/Σw for every cell at once
+    (Woodruff 1971, JASA 66:411; Binder 1983, Int. Statistical Review 51:279): clusters treated
+    as drawn with replacement within strata, with an optional first-stage finite population
+    correction.
+
+    weighted_count, weighted_base: (cells, clusters) Σw·y and Σw over the cell's base records in
+        each cluster, dense or scipy sparse. Every sampled cluster of the design is a column,
+        whether or not it holds records of a given cell: a domain keeps every cluster (records
+        outside it have u = 0); the data are never subset.
+    cluster_stratum: (clusters,) position 0..H−1 of each cluster's stratum, positions in stratum
+        order (that order decides which stratum is a neighbour for `collapse`); every stratum
+        needs at least one cluster.
+    population_clusters: (H,) N_h, the clusters in the population of each stratum, or None
+        (f_h = 0, no correction).
+    single_cluster_strata: error | skip | grand_mean | collapse, see SINGLE_CLUSTER_DESCRIPTIONS.
+    stratum_labels: (H,) stratum codes for error messages.
+
+    With u_i = w_i (y_i − p̂)/W over the cell's base (W = Σw), cluster totals
+    u_hi = (a_hi − p̂·b_hi)/W, and n_h the sampled clusters of stratum h in the whole sample:
+        v = Σ_h (1 − f_h) · n_h/(n_h − 1) · Σ_i (u_hi − ū_h)²,   f_h = n_h/N_h.
+    Clusters without records of the cell have u_hi = 0 and add nothing to Σu_hi or Σu_hi², so
+    Σ_i (u_hi − ū_h)² = Σu_hi² − (Σu_hi)²/n_h over the clusters that hold records: the work
+    follows the non-zero cluster totals, while n_h still counts every sampled cluster.
+    """
+    choice = lookup_member(SingleClusterStrata, single_cluster_strata, what="single_cluster_strata choice")
+    a = _as_csr(weighted_count, "weighted_count")
+    b = _as_csr(weighted_base, "weighted_base")
+    if a.shape != b.shape:
+        raise ValueError(f"weighted_count has shape {a.shape} but weighted_base has shape {b.shape}")
+    if np.any(b.data < 0):
+        raise ValueError("weighted_base must be >= 0 (sums of positive weights)")
+    cells, clusters = b.shape
+    stratum = np.asarray(cluster_stratum)
+    if (clusters == 0 or stratum.shape != (clusters,) or not np.issubdtype(stratum.dtype, np.integer)
+            or stratum.min() < 0):
+        raise ValueError(f"cluster_stratum has shape {stratum.shape}; expected ({clusters},) integer "
+                         "stratum positions >= 0, and at least one cluster")
+    stratum = stratum.astype(np.int64)
+    n_strata = int(stratum.max()) + 1
+    n_h = np.bincount(stratum, minlength=n_strata)
+    labels = [str(s) for s in stratum_labels] if stratum_labels is not None else [str(h) for h in range(n_strata)]
+    if len(labels) != n_strata:
+        raise ValueError(f"stratum_labels has {len(labels)} entries; expected {n_strata}, one per stratum")
+    if np.any(n_h == 0):
+        raise ValueError(f"stratum {labels[int(np.flatnonzero(n_h == 0)[0])]!r} has no cluster; "
+                         "stratum positions must run 0..H−1")
+    big_n = None
+    if population_clusters is not None:
+        big_n = _arr(population_clusters)
+        if big_n.shape != (n_strata,):
+            raise ValueError(f"population_clusters has shape {big_n.shape}; expected ({n_strata},), one per stratum")
+        bad = ~(np.isfinite(big_n) & (big_n >= n_h))  # n_h >= 1, so this also asks N_h > 0
+        if bad.any():
+            h = int(np.flatnonzero(bad)[0])
+            raise ValueError(f"population_clusters of stratum {labels[h]!r} ({big_n[h]:g}) must be a "
+                             f"number >= its {n_h[h]} sampled cluster(s)")
+
+    single = np.flatnonzero(n_h == 1)
+    group = np.arange(n_strata)
+    if single.size and choice is SingleClusterStrata.ERROR:
+        shown = ", ".join(repr(labels[h]) for h in single[:5]) + (" ..." if single.size > 5 else "")
+        raise ValueError(f"stratum {shown} has one sampled cluster, so n_h/(n_h − 1) is undefined; "
+                         "choose single_cluster_strata skip, grand_mean or collapse")
+    if single.size and choice is SingleClusterStrata.COLLAPSE:
+        if n_strata == 1:
+            raise ValueError("the sample has one stratum with one cluster: there is no neighbouring "
+                             "stratum to collapse it with")
+        # joined[h]: strata h and h + 1 form one variance stratum. A lone-cluster stratum joins
+        # the next one, the last joins the previous one; chains of joins merge transitively.
+        joined = np.zeros(n_strata - 1, dtype=bool)
+        joined[np.minimum(single, n_strata - 2)] = True
+        group = np.concatenate(([0], np.cumsum(~joined)))
+    n_groups = int(group[-1]) + 1
+    cluster_group = group[stratum]
+    n_g = np.bincount(cluster_group, minlength=n_groups).astype(np.float64)
+    # (1 − f_h) with f_h = n_h/N_h, the first-stage sampling fraction of the (collapsed) stratum
+    keep = np.ones(n_groups) if big_n is None else 1.0 - n_g / np.bincount(group, weights=big_n, minlength=n_groups)
+
+    big_w = np.asarray(b.sum(axis=1)).ravel()
+    has = big_w > 0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        p_hat = np.where(has, np.asarray(a.sum(axis=1)).ravel() / np.where(has, big_w, 1.0), 0.0)
+    inverse_w = np.where(has, 1.0 / np.where(has, big_w, 1.0), 0.0)
+    u = (sparse.diags(inverse_w) @ (a - sparse.diags(p_hat) @ b)).tocoo()
+
+    # Σu_hi and Σu_hi² per (cell, stratum) over the clusters holding records of the cell
+    code = u.row.astype(np.int64) * n_groups + cluster_group[u.col]
+    keys, position = np.unique(code, return_inverse=True)
+    s1 = np.bincount(position, weights=u.data, minlength=len(keys))
+    s2 = np.bincount(position, weights=u.data * u.data, minlength=len(keys))
+    row, grp = keys // n_groups, keys % n_groups
+    n_k = n_g[grp]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        factor = np.where(n_k > 1, keep[grp] * n_k / np.where(n_k > 1, n_k - 1.0, 1.0), 0.0)
+        within = np.maximum(s2 - s1 * s1 / n_k, 0.0)  # rounding can leave a tiny negative
+    v = np.bincount(row, weights=factor * within, minlength=cells)
+    if single.size and choice is SingleClusterStrata.GRAND_MEAN:
+        # ū over every cluster of the sample, those without records of the cell at 0. (For this
+        # ratio Σ_all u_hi = Σ_i w_i (y_i − p̂)/W = 0, so ū is 0 up to rounding.)
+        u_bar = np.asarray(u.sum(axis=1)).ravel() / clusters
+        lone = n_k == 1
+        v += np.bincount(row[lone], weights=keep[grp[lone]] * (s1[lone] - u_bar[row[lone]]) ** 2, minlength=cells)
+        # lone clusters without records of the cell: u_hi = 0, contribution (1 − f_h)·ū²
+        untouched = keep[n_g == 1].sum() - np.bincount(row[lone], weights=keep[grp[lone]], minlength=cells)
+        v += untouched * u_bar * u_bar
+
+    present = b.tocoo()
+    held = present.data > 0
+    cells_row, cells_col = present.row[held].astype(np.int64), present.col[held]
+    clusters_in = np.bincount(cells_row, minlength=cells)
+    strata_in = np.bincount(np.unique(cells_row * n_groups + cluster_group[cells_col]) // n_groups, minlength=cells)
+    df = np.where(has, np.maximum(clusters_in - strata_in, 1), np.nan).astype(np.float64)
+    return LinearizationVariance(variance=np.where(has, v, np.nan), degrees_of_freedom=df,
+                                 variance_stratum=group, single_cluster_strata=single)
 
 
 # ---------------------------------------------------------------------------------------------

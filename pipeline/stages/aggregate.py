@@ -9,6 +9,7 @@ records are read once.
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass
 
 import numpy as np
@@ -27,15 +28,199 @@ STATISTICS = ("sample_size",        # n: records in the base
               "sum_squared_weights")  # Σw² over the base (Kish effective n)
 
 
+# --------------------------------------------------------------------------------------------
+# Linearization: per-cluster linear sums (DESIGN §2, §4)
+
+
+def _sum_by_key(fine: np.ndarray, cluster: np.ndarray, *sums: np.ndarray):
+    """Sort by (fine, cluster) and add the sums of equal keys. Stable, so the same input gives
+    the same floating-point sums."""
+    order = np.lexsort((cluster, fine))
+    fine, cluster = fine[order], cluster[order]
+    if not len(order):
+        return (fine, cluster) + tuple(s[order] for s in sums)
+    first = np.ones(len(order), dtype=bool)
+    first[1:] = (fine[1:] != fine[:-1]) | (cluster[1:] != cluster[:-1])
+    starts = np.flatnonzero(first)
+    return (fine[starts], cluster[starts]) + tuple(np.add.reduceat(s[order], starts) for s in sums)
+
+
+class ClusterSums:
+    """The additive statistics of Taylor linearization: per (indicator, finest cell, cluster)
+    a = Σw·y and b = Σw over the base records of the cell in the cluster (Woodruff 1971; the
+    cluster totals of the linearized variable are u_hi = (a_hi − p̂·b_hi)/Σw).
+
+    Kept sparse, as sorted key arrays and sums, so memory follows the (cell, cluster) pairs that
+    hold records, never the records. Clusters are (stratum, cluster) code pairs, given integer
+    positions in order of first sight (the mapping grows with the clusters only). Over every
+    accepted record, whatever the indicator, it also keeps each cluster's stratum and each
+    stratum's N_h: a domain keeps every cluster of the design (n_h counts them all).
+    """
+
+    def __init__(self, *, cells: int):
+        self.cells = cells  # finest cells per indicator
+        self._position: dict[tuple, int] = {}
+        self._cluster_stratum: list = []
+        self._population: dict = {}  # stratum -> N_h (NaN without population_clusters)
+        self._merged = (np.empty(0, np.int64), np.empty(0, np.int64), np.empty(0), np.empty(0))
+        self._pending: list[tuple] = []
+        self._pending_size = 0
+
+    @property
+    def n_clusters(self) -> int:
+        return len(self._cluster_stratum)
+
+    def _register(self, stratum, cluster, population) -> np.ndarray:
+        """Integer position of every record's (stratum, cluster); new pairs are appended."""
+        pairs = pd.DataFrame({"s": stratum, "c": cluster})
+        code = pairs.groupby(["s", "c"], sort=False).ngroup().to_numpy()  # numbered by first sight
+        uniques = pairs.drop_duplicates()
+        position = np.empty(len(uniques), dtype=np.int64)
+        for i, key in enumerate(zip(uniques["s"], uniques["c"])):
+            if key not in self._position:
+                self._position[key] = len(self._cluster_stratum)
+                self._cluster_stratum.append(key[0])
+            position[i] = self._position[key]
+        firsts = pd.DataFrame({"s": stratum, "n": population}).drop_duplicates("s")
+        for s, n in zip(firsts["s"], firsts["n"]):
+            self._population.setdefault(s, float(n))  # ingest checked N_h is constant per stratum
+        return position[code]
+
+    def add(self, batch: DerivedBatch) -> None:
+        cluster = self._register(batch.stratum, batch.cluster, batch.population_clusters)
+        fine, where, a, b = [], [], [], []
+        for k in range(batch.in_base.shape[1]):
+            rows = np.flatnonzero(batch.in_base[:, k])
+            w = batch.weight[rows]
+            fine.append(k * self.cells + batch.cell[rows])
+            where.append(cluster[rows])
+            b.append(w)
+            a.append(w * batch.has_characteristic[rows, k])
+        self._append(_sum_by_key(np.concatenate(fine), np.concatenate(where), np.concatenate(a), np.concatenate(b)))
+
+    def _append(self, chunk: tuple) -> None:
+        self._pending.append(chunk)
+        self._pending_size += len(chunk[0])
+        # merge once the pending chunks outgrow the merged sums: memory stays within a small
+        # multiple of the distinct (cell, cluster) pairs
+        if self._pending_size > max(len(self._merged[0]), 1 << 16):
+            self._consolidate()
+
+    def _consolidate(self) -> None:
+        if self._pending:
+            parts = [self._merged] + self._pending
+            self._merged = _sum_by_key(*(np.concatenate([p[j] for p in parts]) for j in range(4)))
+            self._pending, self._pending_size = [], 0
+
+    def merge(self, other: "ClusterSums") -> None:
+        """Add another accumulator's sums (another batch range or machine): its clusters are
+        mapped onto this one's positions by their (stratum, cluster) codes."""
+        if other.cells != self.cells:
+            raise ValueError(f"cannot merge cluster sums over {other.cells} cells into {self.cells}")
+        other._consolidate()
+        remap = np.empty(other.n_clusters, dtype=np.int64)
+        for key, j in other._position.items():
+            if key not in self._position:
+                self._position[key] = len(self._cluster_stratum)
+                self._cluster_stratum.append(key[0])
+            remap[j] = self._position[key]
+        for s, n in other._population.items():
+            self._population.setdefault(s, n)
+        fine, cluster, a, b = other._merged
+        self._append(_sum_by_key(fine, remap[cluster], a, b))
+
+    def totals(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """(fine key = indicator × cells + cell, cluster position, Σw·y, Σw), one row per pair."""
+        self._consolidate()
+        return self._merged
+
+    def design(self) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+        """(strata codes in stratum order, each cluster's stratum position, N_h or None).
+
+        Stratum order is numeric when every code is a whole number, else text order; it decides
+        which stratum is the neighbour when single-cluster strata are collapsed."""
+        codes = list(self._population)
+        numeric = all(re.fullmatch(r"[+-]?\d+", str(c)) for c in codes)
+        codes.sort(key=(lambda c: int(c)) if numeric else str)
+        where = {c: h for h, c in enumerate(codes)}
+        cluster_stratum = np.array([where[s] for s in self._cluster_stratum], dtype=np.int64)
+        population = np.array([self._population[c] for c in codes], dtype=np.float64)
+        return (np.array(codes, dtype=object), cluster_stratum,
+                None if np.isnan(population).all() else population)
+
+
+@dataclass(frozen=True)
+class ClusterTotals:
+    """Rolled-up per-cluster linear sums, row-aligned with the CellTable frame (DESIGN §4).
+
+    weighted_count, weighted_base: (cells, clusters) sparse Σw·y and Σw over the cell's base
+    records in each cluster, summed from the finest cells BEFORE any square is taken (squares
+    do not add across domain cells that split a cluster). cluster_stratum: (clusters,) position
+    of each cluster's stratum in `strata` (stratum order). population_clusters: (strata,) N_h, or
+    None without a finite population correction."""
+
+    weighted_count: sparse.csr_matrix
+    weighted_base: sparse.csr_matrix
+    cluster_stratum: np.ndarray
+    strata: np.ndarray
+    population_clusters: np.ndarray | None
+
+
+def rolled_membership(config, geography: Geography, layout: DomainLayout) -> sparse.csr_matrix:
+    """(rolled cells × finest cells) 0/1 matrix: which finest cells (indicator × finest geography
+    × finest domain cell) add up to each row of `roll_up`'s frame, in the same row order."""
+    K, G, D = len(config.indicators), len(geography.finest_codes), layout.n_cells
+    levels = list(geography.levels)
+    # each finest domain cell's category on every domain axis (mixed radix, last domain fastest)
+    categories = (np.array(np.unravel_index(np.arange(D), layout.shape)) if layout.names
+                  else np.zeros((0, D), dtype=np.int64))
+    rows, columns, offset = [], [], 0
+    for k in range(K):
+        for table in config.tables:
+            deepest = levels.index(table.down_to) if table.down_to else len(levels) - 1
+            by_axes = [layout.names.index(name) for name in table.by]
+            combo, n_combos = np.zeros(D, dtype=np.int64), 1
+            for a in by_axes:  # the table's categories in `by` order, last fastest (as `_keys`)
+                combo = combo * layout.shape[a] + categories[a]
+                n_combos *= layout.shape[a]
+            for level in levels[: deepest + 1]:
+                rows.append((offset + geography.unit_index[level][:, None] * n_combos + combo[None, :]).ravel())
+                columns.append(np.arange(k * G * D, (k + 1) * G * D))  # finest cell g·D + d of indicator k
+                offset += len(geography.codes[level]) * n_combos
+    rows, columns = np.concatenate(rows), np.concatenate(columns)
+    return sparse.csr_matrix((np.ones(len(rows)), (rows, columns)), shape=(offset, K * G * D))
+
+
+def _roll_up_clusters(sums: ClusterSums, config, geography: Geography, layout: DomainLayout,
+                      n_rows: int) -> ClusterTotals:
+    """Linear sums a, b of every rolled cell and cluster: one sparse product with the finest →
+    rolled membership, so only the linear sums are added across cells."""
+    membership = rolled_membership(config, geography, layout)
+    if membership.shape[0] != n_rows:  # the two walks over tables and levels must agree
+        raise AssertionError(f"rolled membership has {membership.shape[0]} rows, the cells table {n_rows}")
+    fine, cluster, a, b = sums.totals()
+    shape = (membership.shape[1], sums.n_clusters)
+    strata, cluster_stratum, population = sums.design()
+    return ClusterTotals(
+        weighted_count=(membership @ sparse.csr_matrix((a, (fine, cluster)), shape=shape)).tocsr(),
+        weighted_base=(membership @ sparse.csr_matrix((b, (fine, cluster)), shape=shape)).tocsr(),
+        cluster_stratum=cluster_stratum, strata=strata, population_clusters=population)
+
+
 class CellAccumulator:
     def __init__(self, *, indicators: int, cells: int, replicates: int):
         self.cells = cells
         self.scalars = np.zeros((indicators, cells, len(STATISTICS)))
         self.replicate_base = np.zeros((indicators, cells, replicates))
         self.replicate_count = np.zeros((indicators, cells, replicates))
+        self.clusters: ClusterSums | None = None  # linearization sums, started by the first batch with a design
 
     def add(self, batch: DerivedBatch) -> None:
         C = self.cells
+        if batch.cluster is not None:
+            if self.clusters is None:
+                self.clusters = ClusterSums(cells=C)
+            self.clusters.add(batch)
         for k in range(batch.in_base.shape[1]):
             rows = np.flatnonzero(batch.in_base[:, k])
             cell = batch.cell[rows]
@@ -59,6 +244,10 @@ class CellAccumulator:
         self.scalars += other.scalars
         self.replicate_base += other.replicate_base
         self.replicate_count += other.replicate_count
+        if other.clusters is not None:
+            if self.clusters is None:
+                self.clusters = ClusterSums(cells=self.cells)
+            self.clusters.merge(other.clusters)
 
 
 @dataclass
@@ -69,6 +258,7 @@ class CellTable:
     frame: pd.DataFrame
     replicate_base: np.ndarray | None
     replicate_count: np.ndarray | None
+    clusters: ClusterTotals | None = None  # per-cluster linear sums, for linearization only
 
 
 def roll_up(acc: CellAccumulator, config, geography: Geography, layout: DomainLayout) -> CellTable:
@@ -116,7 +306,9 @@ def roll_up(acc: CellAccumulator, config, geography: Geography, layout: DomainLa
         frame["population"] = _population_of_whole_units(frame, geography, layout)
     rep_base = values[:, n_scalar: n_scalar + R] if has_reps else None
     rep_count = values[:, n_scalar + R:] if has_reps else None
-    return CellTable(frame=frame, replicate_base=rep_base, replicate_count=rep_count)
+    clusters = (_roll_up_clusters(acc.clusters, config, geography, layout, len(frame))
+                if acc.clusters is not None else None)
+    return CellTable(frame=frame, replicate_base=rep_base, replicate_count=rep_count, clusters=clusters)
 
 
 def _population_of_whole_units(frame: pd.DataFrame, geography: Geography, layout: DomainLayout) -> np.ndarray:

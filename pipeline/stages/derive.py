@@ -13,7 +13,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from pipeline.stages.ingest import Geography
+from pipeline.stages.ingest import ONE_STRATUM, Geography
 
 
 @dataclass(frozen=True)
@@ -49,6 +49,11 @@ class DerivedBatch:
     in_base: np.ndarray            # (records, indicators) bool
     has_characteristic: np.ndarray # (records, indicators) bool, only meaningful in the base
     item_nonresponse: np.ndarray   # (records, indicators) bool
+    # linearization design (None unless design.variance is linearization): per record its stratum
+    # code, its cluster code, and N_h of its stratum (NaN without population_clusters)
+    stratum: np.ndarray | None = None
+    cluster: np.ndarray | None = None
+    population_clusters: np.ndarray | None = None
 
 
 def derive(config, frame: pd.DataFrame, geography: Geography, layout: DomainLayout) -> DerivedBatch:
@@ -76,7 +81,20 @@ def derive(config, frame: pd.DataFrame, geography: Geography, layout: DomainLayo
     return DerivedBatch(cell=geo_position.astype(np.int64) * layout.n_cells + domain_cell,
                         weight=frame[config.design.weight].to_numpy(dtype=np.float64),
                         replicate_weights=reps, in_base=in_base, has_characteristic=has,
-                        item_nonresponse=nonresponse)
+                        item_nonresponse=nonresponse, **_design(config, frame))
+
+
+def _design(config, frame: pd.DataFrame) -> dict:
+    """The linearization design columns of a batch (ingest has checked them)."""
+    lin = config.design.linearization if config.design.variance == "linearization" else None
+    if lin is None:
+        return {}
+    stratum = (frame[lin.strata].to_numpy(dtype=object) if lin.strata is not None
+               else np.full(len(frame), ONE_STRATUM, dtype=object))
+    population = (frame[lin.population_clusters].to_numpy(dtype=np.float64) if lin.population_clusters is not None
+                  else np.full(len(frame), np.nan))
+    return {"stratum": stratum, "cluster": frame[lin.clusters].to_numpy(dtype=object),
+            "population_clusters": population}
 
 
 def _category_position(domain, frame: pd.DataFrame) -> np.ndarray:

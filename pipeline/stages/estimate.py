@@ -19,10 +19,11 @@ def estimate(cells: CellTable, config) -> pd.DataFrame:
     base = f["weighted_base"].to_numpy()
     with np.errstate(invalid="ignore", divide="ignore"):
         p_hat = np.where(base > 0, f["weighted_count"].to_numpy() / base, np.nan)
-    v = cell_variance(cells, config, p_hat=p_hat, n=n)
+    lin = linearization(cells, config) if config.design.variance == "linearization" else None
+    v = cell_variance(cells, config, p_hat=p_hat, n=n, lin=lin)
     se = np.sqrt(v)
     n_eff = variance.effective_n(v, p_hat, n)
-    df = cell_degrees_of_freedom(cells, config, n=n)
+    df = cell_degrees_of_freedom(cells, config, n=n, lin=lin)
     est = config.estimation
     interval = intervals.proportion_interval(p_hat, n_eff, method=est.interval, confidence=est.confidence,
                                              std_error=se, df=df, sample_size=n)
@@ -40,8 +41,10 @@ def estimate(cells: CellTable, config) -> pd.DataFrame:
     return f
 
 
-def cell_variance(cells: CellTable, config, *, p_hat: np.ndarray, n: np.ndarray) -> np.ndarray:
-    """Variance of p̂ by the configured method; NaN where the cell has no sample."""
+def cell_variance(cells: CellTable, config, *, p_hat: np.ndarray, n: np.ndarray,
+                  lin: variance.LinearizationVariance | None = None) -> np.ndarray:
+    """Variance of p̂ by the configured method; NaN where the cell has no sample. `lin` is the
+    linearization result when already computed (it also gives the degrees of freedom)."""
     method = config.design.variance
     if method == "simple_random":
         # finite population correction where the lookup gives the population and n/N > 10%
@@ -54,12 +57,15 @@ def cell_variance(cells: CellTable, config, *, p_hat: np.ndarray, n: np.ndarray)
         p_rep = variance.replicate_estimates(cells.replicate_count, cells.replicate_base)
         v = variance.replicate_variance(p_hat, p_rep, method=reps.method, fay_rho=reps.fay_rho,
                                         factor=reps.factor, multipliers=reps.multipliers)
+    elif method == "linearization":
+        v = (lin or linearization(cells, config)).variance
     else:  # the config only admits the methods above
         raise AssertionError(f"design.variance {method!r} has no estimator")
     return np.where(n > 0, v, np.nan)
 
 
-def cell_degrees_of_freedom(cells: CellTable, config, *, n: np.ndarray) -> np.ndarray:
+def cell_degrees_of_freedom(cells: CellTable, config, *, n: np.ndarray,
+                            lin: variance.LinearizationVariance | None = None) -> np.ndarray:
     """Design degrees of freedom per cell (for Korn–Graubard and the df review rule):
     design.degrees_of_freedom when given; n − 1 for simple_random and kish; R − 1 for replicate
     weights (common practice for replicate designs; set design.degrees_of_freedom to the
@@ -72,6 +78,23 @@ def cell_degrees_of_freedom(cells: CellTable, config, *, n: np.ndarray) -> np.nd
         df = n - 1.0
     elif method == "replicate":
         df = np.full(len(n), float(design.replicates.count - 1))
+    elif method == "linearization":
+        # clusters − strata holding base records of the cell, at least 1 (DESIGN §4)
+        df = (lin or linearization(cells, config)).degrees_of_freedom
     else:  # the config only admits the methods above
         raise AssertionError(f"design.variance {method!r} has no degrees of freedom")
     return np.where(n > 0, df, np.nan)
+
+
+def linearization(cells: CellTable, config) -> variance.LinearizationVariance:
+    """Taylor-linearization variance and degrees of freedom of every cell, from the rolled
+    per-cluster sums (Woodruff 1971; Binder 1983). Ingest has already stopped a design that
+    single_cluster_strata 'error' or the population_clusters rules refuse."""
+    totals = cells.clusters
+    if totals is None:  # roll_up fills it whenever the batches carry a design
+        raise AssertionError("design.variance is 'linearization' but the cells carry no cluster sums")
+    lin = config.design.linearization
+    return variance.linearization_variance(
+        totals.weighted_count, totals.weighted_base, cluster_stratum=totals.cluster_stratum,
+        population_clusters=totals.population_clusters, single_cluster_strata=lin.single_cluster_strata,
+        stratum_labels=totals.strata)

@@ -187,8 +187,25 @@ def needed_columns(config) -> list[str]:
     """Exactly the columns the run reads, in a fixed order."""
     cols = [config.source.record_id, config.geography.key, config.design.weight]
     cols += config.replicate_columns
+    cols += list(_design_columns(config))
     cols += list(config.source.variables)
     return list(dict.fromkeys(cols))
+
+
+def _design_columns(config) -> dict[str, tuple[str, str]]:
+    """The linearization design columns (when that variance method is configured), with their
+    roles: strata and clusters are codes (string or integer, never missing), population_clusters
+    a number (N_h, checked per stratum by `ClusterDesignCheck`)."""
+    lin = config.design.linearization if config.design.variance == "linearization" else None
+    if lin is None:
+        return {}
+    roles = {}
+    if lin.strata is not None:
+        roles[lin.strata] = ("design.linearization.strata", "key")
+    roles[lin.clusters] = ("design.linearization.clusters", "key")
+    if lin.population_clusters is not None:
+        roles[lin.population_clusters] = ("design.linearization.population_clusters", "number")
+    return roles
 
 
 def plan_source(config) -> list[SourceFile]:
@@ -251,6 +268,7 @@ def _column_roles(config) -> dict[str, tuple[str, str]]:
              config.design.weight: ("design.weight", "number")}
     for col in config.replicate_columns:
         roles[col] = ("design.replicates", "number")
+    roles.update(_design_columns(config))
     for name, var in config.source.variables.items():
         roles[name] = (f"source.variables.{name}", var.type)
     return roles
@@ -289,6 +307,7 @@ def iter_batches(config, files: list[SourceFile], geography: Geography) -> Itera
     batches and files (the first occurrence is kept)."""
     schema = build_row_schema(config, geography)
     seen = SeenIds()
+    design = ClusterDesignCheck.for_config(config)
     columns = needed_columns(config)
     for source in files:
         count = FileCount(source.path)
@@ -320,10 +339,14 @@ def iter_batches(config, files: list[SourceFile], geography: Geography) -> Itera
             count.read += n_read
             count.rejected += n_rejected
             count.accepted += n_read - n_rejected
+            if design is not None:
+                design.add(frame.loc[keep])
             yield Batch(frame=frame.loc[keep].reset_index(drop=True), rejects=rejects, count=count,
                         rows_read=n_read, rows_rejected=n_rejected)
         if count.read == 0:
             raise InputDataError(f"source.path: {source.path.name} holds no records")
+    if design is not None:
+        design.raise_if_unusable()
 
 
 def _empty_rejects() -> pd.DataFrame:
@@ -423,6 +446,19 @@ def _coerce_types(config, frame: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFra
     return typed, rejects
 
 
+def typed_records(config, frame: pd.DataFrame) -> pd.DataFrame:
+    """The columns a run reads, with exactly the working types `iter_batches` gives them, for
+    records already in memory (the coverage study draws its samples in memory and writes no
+    files). Only the typing is done, not the row rules: a value that cannot be typed raises
+    InputDataError, since a real run would reject its row and the caller would silently differ."""
+    typed, rejects = _coerce_types(config, frame)
+    if len(rejects):
+        first = rejects.iloc[0]
+        raise InputDataError(f"{len(rejects)} value(s) cannot be typed as declared; first: column "
+                             f"{first['column']!r}, value {first['value']!r}")
+    return typed
+
+
 # --------------------------------------------------------------------------------------------
 # Row rules: a pandera schema built from the config
 
@@ -440,6 +476,10 @@ def build_row_schema(config, geography: Geography) -> pa.DataFrameSchema:
         config.design.weight: pa.Column(nullable=True, checks=[
             pa.Check(lambda s: finite(s) & (s > 0), name=RejectReason.WEIGHT_NOT_POSITIVE.value, ignore_na=False)]),
     }
+    for col, (_, kind) in _design_columns(config).items():
+        # strata and cluster codes may not be missing (a row without them is rejected, like a
+        # missing geography key); N_h is a property of the stratum, checked by ClusterDesignCheck
+        columns[col] = pa.Column(nullable=kind != "key")
     for col in config.replicate_columns:
         columns[col] = pa.Column(nullable=True, checks=[
             pa.Check(lambda s: finite(s) & (s >= 0), name=RejectReason.REPLICATE_WEIGHT_INVALID.value,
@@ -507,6 +547,108 @@ class SeenIds:
         if len(self._runs) > self.MAX_RUNS:
             self._runs = [np.sort(np.concatenate(self._runs))]
         return earlier
+
+
+ONE_STRATUM = "(one stratum)"  # the stratum code of every record when design.linearization.strata is not given
+
+
+class ClusterDesignCheck:
+    """The linearization design over every accepted record, across batches and files: the sampled
+    clusters n_h of each stratum and its N_h (population_clusters). Problems here belong to a
+    stratum, not to a row, so they fail the input (InputDataError naming the stratum and values)
+    instead of rejecting rows. Memory follows the number of clusters, not of records.
+
+    Checked: N_h a number > 0, the same on every record of its stratum, and at least n_h; with
+    single_cluster_strata 'error', no stratum with one sampled cluster; with 'collapse', a
+    neighbouring stratum to collapse with.
+    """
+
+    SHOWN = 10  # problems listed per kind
+
+    def __init__(self, *, strata: str | None, clusters: str, population_clusters: str | None,
+                 single_cluster_strata: str):
+        self.strata = strata
+        self.clusters = clusters
+        self.population_clusters = population_clusters
+        self.single_cluster_strata = single_cluster_strata
+        self._sampled: set[tuple[str, str]] = set()
+        self._population: dict[str, float] = {}
+        self._conflicting: dict[str, set[float]] = {}
+        self._invalid: dict[str, object] = {}
+
+    @classmethod
+    def for_config(cls, config) -> "ClusterDesignCheck | None":
+        lin = config.design.linearization if config.design.variance == "linearization" else None
+        if lin is None:
+            return None
+        return cls(strata=lin.strata, clusters=lin.clusters, population_clusters=lin.population_clusters,
+                   single_cluster_strata=lin.single_cluster_strata)
+
+    def add(self, frame: pd.DataFrame) -> None:
+        if not len(frame):
+            return
+        strata = (frame[self.strata].to_numpy(dtype=object) if self.strata is not None
+                  else np.full(len(frame), ONE_STRATUM, dtype=object))
+        pairs = pd.DataFrame({"s": strata, "c": frame[self.clusters].to_numpy(dtype=object)}).drop_duplicates()
+        self._sampled.update(zip(pairs["s"], pairs["c"]))
+        if self.population_clusters is None:
+            return
+        values = pd.DataFrame({"s": strata, "n": frame[self.population_clusters].to_numpy(dtype=np.float64)})
+        for stratum, value in zip(*values.drop_duplicates().to_numpy().T):
+            value = float(value)
+            if not (np.isfinite(value) and value > 0):
+                self._invalid.setdefault(stratum, value)
+                continue
+            first = self._population.setdefault(stratum, value)
+            if value != first:
+                self._conflicting.setdefault(stratum, {first}).add(value)
+
+    def sampled_clusters(self) -> dict[str, int]:
+        """n_h: the clusters with at least one accepted record, per stratum."""
+        counts: dict[str, int] = {}
+        for stratum, _ in self._sampled:
+            counts[stratum] = counts.get(stratum, 0) + 1
+        return counts
+
+    def problems(self) -> list[str]:
+        n_h = self.sampled_clusters()
+        path = f"design.linearization.population_clusters ({self.population_clusters!r})"
+        found: list[list[str]] = [[], [], [], []]
+        for stratum in sorted(self._invalid):
+            found[0].append(f"{path}: stratum {stratum!r} has {self._invalid[stratum]:g}; N_h, the clusters in "
+                            "the stratum's population, must be a number > 0 on every record")
+        for stratum in sorted(self._conflicting):
+            shown = ", ".join(f"{v:g}" for v in sorted(self._conflicting[stratum]))
+            found[1].append(f"{path}: stratum {stratum!r} has different values ({shown}); N_h must be the "
+                            "same on every record of a stratum")
+        for stratum in sorted(self._population):
+            big_n = self._population[stratum]
+            if stratum not in self._conflicting and stratum not in self._invalid and big_n < n_h[stratum]:
+                found[2].append(f"{path}: stratum {stratum!r} has N_h = {big_n:g} but {n_h[stratum]} sampled "
+                                "clusters; N_h must be at least the clusters sampled there")
+        single = sorted(s for s, k in n_h.items() if k == 1)
+        choice_path = f"design.linearization.single_cluster_strata ({self.single_cluster_strata!r})"
+        if single and self.single_cluster_strata == "error":
+            for stratum in single:
+                cluster = next(c for s, c in self._sampled if s == stratum)
+                found[3].append(f"{choice_path}: stratum {stratum!r} has one sampled cluster ({cluster!r}), so "
+                                "its variance contribution cannot be estimated; choose skip, grand_mean or "
+                                "collapse, or correct the strata")
+        if single and self.single_cluster_strata == "collapse" and len(n_h) == 1:
+            found[3].append(f"{choice_path}: the sample has one stratum ({single[0]!r}) with one cluster; "
+                            "there is no neighbouring stratum to collapse it with")
+        out = []
+        for kind in found:
+            out += kind[: self.SHOWN]
+            if len(kind) > self.SHOWN:
+                out.append(f"... and {len(kind) - self.SHOWN} more like the above")
+        return out
+
+    def raise_if_unusable(self) -> None:
+        problems = self.problems()
+        if problems:
+            raise InputDataError("design.linearization: the sampling design in the input cannot be used "
+                                 "for linearization", problems)
 
 
 def _duplicate_ids(frame: pd.DataFrame, id_column: str, seen: SeenIds) -> pd.DataFrame:
