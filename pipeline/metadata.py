@@ -130,6 +130,9 @@ def build_metadata(config, domain_names) -> dict:
                                 "description": "z × standard error with z = Φ⁻¹(1 − α/2)"},
             "item_nonresponse": "A record in an indicator's universe whose condition columns are missing "
                                 "leaves that indicator's base (it is not counted as 'no').",
+            # every method a config may choose, so a reader can compare with what this release used
+            "available_intervals": dict(intervals.METHOD_DESCRIPTIONS),
+            "available_replicate_methods": dict(variance.REPLICATE_DESCRIPTIONS),
         },
         "thresholds": {
             "reliability": rel.model_dump() if rel.standard == "custom" else {

@@ -23,6 +23,13 @@ def test_every_column_code_and_method_is_explained():
     assert "wilson" in meta["method"]["interval"]["name"]
     assert "Fay" in meta["method"]["variance"]  # successive difference, Fay & Train 1995
     assert set(meta["indicators"]) == set(config.indicators)
+    # every selectable method is listed with its formula and source
+    from pipeline.methods.intervals import IntervalMethod
+    from pipeline.methods.variance import ReplicateMethod
+
+    assert set(meta["method"]["available_intervals"]) == {m.value for m in IntervalMethod}
+    assert set(meta["method"]["available_replicate_methods"]) == {m.value for m in ReplicateMethod}
+    assert all("19" in text or "20" in text for text in meta["method"]["available_intervals"].values())
     assert meta["thresholds"]["reliability"]["min_sample"] == 30
     json.dumps(meta)  # serialisable as it stands
 
