@@ -15,8 +15,8 @@ table), for all cells and for the cells the reliability rules publish (status no
 
 Definitions (also written into coverage.json and coverage_summary.md):
 * Bands are by the cell's effective sample size as the pipeline estimated it in that sample under
-  that variance method (the figure a reader of the release sees), not by a fixed property of the
-  cell: <30, 30-99, 100-299, 300-999, >=1000.
+  that variance method (the figure a reader of the release sees, rounded to 6 decimals against
+  floating-point noise), not by a fixed property of the cell: <30, 30-99, 100-299, 300-999, >=1000.
 * A cell-sample counts when the truth is defined (its universe is not empty in the population) and
   the interval has finite bounds; covered means ci_lower <= truth <= ci_upper.
 * Published cells: status not suppressed under the rules of configs/demo.yaml (`standard: custom`)
@@ -168,7 +168,9 @@ def _linearization_design(base: dict, microdata_columns: list[str], notes: list[
     clusters = psu, with N_h from psu_count when the microdata carry it."""
     if LINEARIZATION_CONFIG.is_file():
         design = yaml.safe_load(LINEARIZATION_CONFIG.read_text())["design"]
-        notes.append(f"linearization design taken from {LINEARIZATION_CONFIG.relative_to(ROOT)}")
+        shown = (LINEARIZATION_CONFIG.relative_to(ROOT) if LINEARIZATION_CONFIG.is_relative_to(ROOT)
+                 else LINEARIZATION_CONFIG)
+        notes.append(f"linearization design taken from {shown}")
     else:
         design = {"weight": base["design"]["weight"], "variance": "linearization",
                   "linearization": {"strata": "stratum", "clusters": "psu",
@@ -296,7 +298,9 @@ def _run_sample(index_and_seed: tuple[int, int]) -> tuple[int, np.ndarray, np.nd
             raise AssertionError("coverage: the cell table no longer lines up with the truth table")
         lower = frame["ci_lower"].to_numpy(dtype=np.float64)
         upper = frame["ci_upper"].to_numpy(dtype=np.float64)
-        effective_n = frame["effective_n"].to_numpy(dtype=np.float64)
+        # Rounded before banding: p̂q̂ / (p̂q̂/n) can come out as 29.999999999999996 for n = 30,
+        # which would put a cell that shows an effective n of 30 in the band below.
+        effective_n = np.round(frame["effective_n"].to_numpy(dtype=np.float64), 6)
         usable = np.isfinite(truth) & np.isfinite(lower) & np.isfinite(upper)
         with np.errstate(invalid="ignore"):
             covered = usable & (lower <= truth) & (truth <= upper)
@@ -385,10 +389,10 @@ def _table(per_sample: np.ndarray, variances: tuple[str, ...], bins: list[tuple[
     return pd.DataFrame(rows)
 
 
-def _fmt(row: pd.Series | None) -> str:
-    if row is None or not row["cell_samples"]:
+def _fmt(row: pd.Series) -> str:
+    if not row["cell_samples"]:
         return "–"
-    text = f"{100 * row['covered_share']:.1f} ± {100 * row['mc_se']:.1f}"
+    text = f"{100 * row['covered_share']:.1f} ± {100 * row['mc_se']:.2f}"
     if not row["enough_to_judge"]:
         return f"({text})"
     return text if row["within_target"] else f"**{text}**"
@@ -413,15 +417,16 @@ def _summary_markdown(table: pd.DataFrame, parameters: dict, unavailable: dict[s
     lines += [header, "|" + "---|" * (4 + len(HEADLINE_METHODS))]
     for design in HEADLINE_DESIGNS:
         if design in unavailable:
-            lines.append(f"| {design} | not run: {unavailable[design]} |" + " |" * (2 + len(HEADLINE_METHODS)))
+            lines.append(f"| {design} | not run: {unavailable[design]} |"
+                         + " |" * (2 + len(HEADLINE_METHODS)))
             continue
         if design not in set(table["variance"]):
             continue
         for band in [b[0] for b in BANDS] + ["all"]:
-            get = lambda m: pub.loc[(design, m, band)] if (design, m, band) in pub.index else None  # noqa: E731
-            custom, nchs = get("wilson"), get(NCHS_INTERVAL)
-            lines.append(f"| {design} | {band} | {int(custom['cell_samples']):,} | "
-                         f"{int(nchs['cell_samples']):,} | " + " | ".join(_fmt(get(m)) for m in HEADLINE_METHODS) + " |")
+            rows = {m: pub.loc[(design, m, band)] for m in HEADLINE_METHODS}
+            lines.append(f"| {design} | {band} | {int(rows['wilson']['cell_samples']):,} | "
+                         f"{int(rows[NCHS_INTERVAL]['cell_samples']):,} | "
+                         + " | ".join(_fmt(rows[m]) for m in HEADLINE_METHODS) + " |")
     misses = table[(table["subset"] == "published") & table["enough_to_judge"] & ~table["within_target"]
                    & (table["band"] != "all")]
     lines += ["", "Judged rows outside the target, published cells (every variance and interval method):", ""]
@@ -430,7 +435,7 @@ def _summary_markdown(table: pd.DataFrame, parameters: dict, unavailable: dict[s
             side = "truth above the interval" if r["miss_truth_above"] > r["miss_truth_below"] else \
                 "truth below the interval"
             lines.append(f"* {r['variance']} / {r['interval']} / n_eff {r['band']}: "
-                         f"{100 * r['covered_share']:.1f}% (± {100 * r['mc_se']:.1f}; most misses: {side})")
+                         f"{100 * r['covered_share']:.1f}% (± {100 * r['mc_se']:.2f}; most misses: {side})")
     else:
         lines.append("* none")
     for name, why in unavailable.items():
@@ -519,6 +524,7 @@ def run_coverage(*, samples: int = 500, persons: int = 40_000, seed: int = DEFAU
         if isinstance(value, bool) or not isinstance(value, int) or value < least:
             raise ValueError(f"{name} ({value!r}) must be an integer >= {least}")
     started = time.perf_counter()
+    sources = _sources_sha256()  # before anything runs: the code this study is made with
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     base = yaml.safe_load(DEMO_CONFIG.read_text())
@@ -615,7 +621,7 @@ def run_coverage(*, samples: int = 500, persons: int = 40_000, seed: int = DEFAU
         "runtime_seconds": round(time.perf_counter() - started, 1),
         "setup_seconds": round(setup_seconds, 1), "samples_seconds": round(loop_seconds, 1),
         "machine": _machine(),
-        "pipeline_sources_sha256": _sources_sha256(),
+        "pipeline_sources_sha256": sources,
     }
     files = {"csv": out / "coverage.csv", "by_effective_n": out / "coverage_by_effective_n.csv",
              "png": out / "coverage.png", "summary": out / "coverage_summary.md", "json": out / "coverage.json"}

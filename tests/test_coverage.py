@@ -113,7 +113,7 @@ def _release_counts(tmp_path, population, microdata, variance: str, interval: st
     covered = usable & (joined["ci_lower"] <= truth) & (truth <= joined["ci_upper"])
     below = usable & (truth < joined["ci_lower"])
     published = joined["status"] != "suppressed"
-    band = pd.cut(joined["effective_n"], [b[1] for b in BANDS] + [math.inf], right=False,
+    band = pd.cut(joined["effective_n"].round(6), [b[1] for b in BANDS] + [math.inf], right=False,
                   labels=BAND_LABELS)
     out = np.zeros((len(BANDS), len(SUBSETS), 3), dtype=np.int64)
     for j, subset in enumerate((usable, usable & published)):

@@ -459,7 +459,6 @@ def test_demo_linearization_config_matches_the_demo_config():
     lin = yaml.safe_load((ROOT / "configs" / "demo_linearization.yaml").read_text())
     assert lin["design"] == {"weight": "wt", "variance": "linearization",
                              "linearization": {"strata": "stratum", "clusters": "psu",
-                                               "population_clusters": "psu_count",
                                                "single_cluster_strata": "error"}}
     assert lin["release"]["name"] == "living-conditions-linearized"
     assert lin["estimation"]["interval"] == "korn_graubard" and lin["reliability"] == {"standard": "nchs_2017"}
@@ -487,8 +486,9 @@ def demo_records(micro: pd.DataFrame, indicator: str) -> tuple[pd.DataFrame, pd.
 
 
 def test_demo_through_runner_equals_naive(project):
-    path = write_config(project / "configs" / "lin.yaml",
-                        yaml.safe_load((ROOT / "configs" / "demo_linearization.yaml").read_text()))
+    settings = yaml.safe_load((ROOT / "configs" / "demo_linearization.yaml").read_text())
+    settings["design"]["linearization"]["population_clusters"] = "psu_count"  # exercise the fpc too
+    path = write_config(project / "configs" / "lin.yaml", settings)
     summary = runner.run(path, release_id="lin-check")
     cells = pd.read_parquet(summary.release_dir / "internal" / "cells.parquet")
     raw = project / "data" / "raw"
