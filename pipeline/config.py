@@ -146,10 +146,24 @@ class ReliabilityConfig(_Model):
     standard: Literal["custom", "nchs_2017"] = "custom"
 
 
+class ProtectionConfig(_Model):
+    """How wide the range a reader can work out for a withheld confidential cell must be: upper −
+    lower >= relative × the cell's value, and >= `respondents` persons' worth (the cell's mean
+    weight times respondents for weighted counts; None: min_respondents). See DESIGN §4."""
+
+    relative: float = Field(default=0.5, ge=0)
+    respondents: int | None = Field(default=None, ge=0)
+
+
 class DisclosureConfig(_Model):
     min_respondents: int = Field(default=5, ge=0)
-    complementary: bool = False
+    complementary: bool = True              # complementary suppression + audit (pipeline.methods.suppression)
     round_counts_to: int = Field(default=10, ge=0)
+    protection: ProtectionConfig = Field(default_factory=ProtectionConfig)
+    unanimous_below: int = Field(default=0, ge=0)   # x = 0 or x = n with n below this is primary; 0 = off
+    cost: Literal["cells", "weighted_base"] = "cells"
+    time_limit_seconds: float = Field(default=60, gt=0)
+    decimals: int | None = Field(default=4, ge=0, le=12)   # estimates and intervals in the public files
 
 
 class OutputConfig(_Model):
@@ -550,10 +564,6 @@ def _check_references(s: RatebookConfig) -> list[str]:
     if rel.cv_caution > rel.cv_suppress:
         problems.append(f"reliability.cv_caution ({rel.cv_caution:g}) must not exceed "
                         f"reliability.cv_suppress ({rel.cv_suppress:g})")
-    if s.disclosure.complementary:
-        problems.append("disclosure.complementary: true is not available in this version: complementary "
-                        "suppression is not implemented yet, so withheld cells could be recovered by "
-                        "subtraction; set false and review the release before publishing")
     if len(set(s.output.formats)) != len(s.output.formats):
         problems.append(f"output.formats: {s.output.formats} names a format twice")
     return problems

@@ -28,6 +28,7 @@ class Reason(str, Enum):
     CV_HIGH = "cv_high"
     CV_TOO_HIGH = "cv_too_high"
     FEW_RESPONDENTS = "few_respondents"
+    COMPLEMENTARY = "complementary"   # hidden so that a confidential neighbour cannot be worked out
     EFFECTIVE_N_TOO_SMALL = "effective_n_too_small"
     CI_TOO_WIDE = "ci_too_wide"
     DF_LOW = "df_low"
@@ -62,8 +63,15 @@ def reason_descriptions(config) -> dict[str, str]:
         Reason.ESTIMATE_AT_BOUNDARY.value:
             "The estimate is 0 or 1; flagged for review (NCHS standard, Parker et al. 2017).",
         Reason.FEW_RESPONDENTS.value:
-            f"Fewer than {dis.min_respondents} sampled persons have, or lack, the characteristic; "
-            "withheld so that no respondent can be singled out.",
+            f"Fewer than {dis.min_respondents} sampled persons have, or lack, the characteristic"
+            + (f" (in a cell of fewer than {dis.unanimous_below} sampled persons, possibly none)"
+               if dis.unanimous_below else "")
+            + "; withheld so that no respondent can be singled out.",
+        # one code for the threshold and the unanimous rule: a code saying 'all or none' would
+        # itself tell a reader what the withheld figure hides
+        Reason.COMPLEMENTARY.value:
+            "Withheld so that a confidential figure nearby cannot be worked out by subtraction from "
+            "published totals; this figure itself may be reliable.",
     }
 
 

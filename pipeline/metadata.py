@@ -22,10 +22,82 @@ CAUTIONS = [
     "from its own quality standards before publishing.",
     "The disclosure rules here are a minimum. What may be published is decided by the office's "
     "confidentiality rules and by local law and policy, which take precedence over these defaults.",
-    "Complementary suppression is not applied in this version: a withheld cell may be recoverable by "
-    "subtraction from published totals (a parent area minus its other children, or the 'all' category "
-    "minus the other categories). Review a release for this before making it public.",
+    "Confidential figures cannot be narrowed down from the published ones below a protection level: "
+    "where one could be recovered by subtraction (a parent area minus its other children, or 'all' minus the other "
+    "categories), further figures are withheld with it (reason 'complementary'), and an audit by "
+    "linear programming proves, before anything is published, that the published figures leave every "
+    "confidential figure within a range at least as wide as the protection level (see "
+    "'method.disclosure'). The protection level and the thresholds are defaults from common practice; "
+    "the office's confidentiality rules and local law decide them.",
 ]
+
+_NOT_PROTECTED = (
+    "Complementary suppression is switched off for this release (disclosure.complementary: false): a "
+    "withheld cell may be recoverable by subtraction from published totals (a parent area minus its "
+    "other children, or the 'all' category minus the other categories). Review it before making it public.")
+
+
+def cautions(config) -> list[str]:
+    """The cautions of a release: with complementary suppression off, the last one says so instead."""
+    if config.disclosure.complementary:
+        return list(CAUTIONS)
+    return CAUTIONS[:-1] + [_NOT_PROTECTED]
+
+
+def _rounded(config) -> str:
+    d = config.disclosure.decimals
+    return "" if d is None else f" Rounded to {d} decimal places (halves up) in this file."
+
+
+def disclosure_text(config) -> dict:
+    """What the protect stage does, with the thresholds in force (pipeline.stages.protect)."""
+    dis = config.disclosure
+    k = dis.min_respondents
+    respondents = k if dis.protection.respondents is None else dis.protection.respondents
+    out = {
+        "primary": f"A cell is withheld when 0 < x < {k} or 0 < n − x < {k} (x sampled persons with the "
+                   f"characteristic, n in the base: threshold rule on unweighted counts)"
+                   + (f", or when x = 0 or x = n in a cell of fewer than {dis.unanimous_below} persons "
+                      "(everyone's answer would be known); both carry the code 'few_respondents'"
+                      if dis.unanimous_below else
+                      "; a cell where none (or all) of the sampled persons have the characteristic is "
+                      "not protected as such (disclosure.unanimous_below is off)") + ".",
+        "rounding": (f"Weighted counts and bases are rounded to the nearest {dis.round_counts_to}"
+                     if dis.round_counts_to else "Weighted counts and bases are not rounded")
+                    + ("; estimates, errors and intervals to " + f"{dis.decimals} decimal places"
+                       if dis.decimals is not None else "; estimates are not rounded") + " (halves up).",
+    }
+    if not dis.complementary:
+        out["complementary"] = "Not applied (disclosure.complementary: false); no audit was run."
+        return out
+    out.update({
+        "complementary": "Further cells are withheld (code 'complementary') so that no confidential cell can be "
+                         "worked out from the additive relations of the release (a parent area is the sum of "
+                         "its children, 'all' the sum of its categories), for the weighted count, the weighted "
+                         "base and the sample size alike. They are chosen by a mixed-integer program "
+                         f"(scipy.optimize.milp) that hides as little as possible (cost '{dis.cost}': "
+                         + ("each hidden cell counts 2 to the power of its steps above the finest cells, so "
+                            "detail is hidden before totals" if dis.cost == "cells" else
+                            "the weighted base of each hidden cell") +
+                         "), with capacity cuts from the audit until every confidential cell is protected "
+                         "(Fischetti & Salazar-González 2000, JASA 95:916; Hundepool et al. 2012, Statistical "
+                         f"Disclosure Control, Wiley). After {dis.time_limit_seconds:g} s the program gives way "
+                         "to a greedy choice, audited the same way.",
+        "protection_level": f"For every confidential cell, the range of values a reader can work out from everything "
+                            f"published must be at least max({dis.protection.relative:g} × the value, "
+                            f"{respondents} × the cell's mean weight) wide for the weighted count of the side "
+                            f"with fewer than {k} respondents (with, or without, the characteristic), and at least "
+                            f"{respondents} wide for the sample size (common practice; set by the office).",
+        "audit": "Audited: the weighted count with the characteristic, the weighted count without it (base − "
+                 "count) and the sample size, each over its own additive table. Before publication, linear "
+                 "programs (scipy.optimize.linprog) take the reader's view: every "
+                 "relation holds, published counts lie within their rounding intervals (narrowed by the "
+                 "printed estimate), sample sizes are exact, withheld figures are at least 0 and at most the "
+                 "grand total, and what reason codes say about a withheld cell's sample size holds. For every "
+                 "confidential cell they prove a range at least as wide as the protection level; if any falls "
+                 "short the release is refused and nothing is published.",
+    })
+    return out
 
 
 def column_descriptions(config, domain_names) -> dict[str, str]:
@@ -39,12 +111,15 @@ def column_descriptions(config, domain_names) -> dict[str, str]:
     for name in domain_names:
         cols[name] = f"Category of domain '{name}', or 'all' for every category together."
     cols.update({
-        "estimate": "Estimated proportion, in [0, 1]: weighted count / weighted base.",
-        "std_error": "Standard error of the estimate under the survey design (see 'method.variance').",
-        "ci_lower": f"Lower bound of the {est.confidence:.0%} confidence interval (see 'method.interval').",
-        "ci_upper": f"Upper bound of the {est.confidence:.0%} confidence interval.",
-        "margin_of_error": f"Margin of error at {est.margin_confidence:.0%} confidence: z × standard error.",
-        "cv": "Coefficient of variation: standard error / estimate (empty when the estimate is 0).",
+        "estimate": "Estimated proportion, in [0, 1]: weighted count / weighted base." + _rounded(config),
+        "std_error": "Standard error of the estimate under the survey design (see 'method.variance')."
+                     + _rounded(config),
+        "ci_lower": f"Lower bound of the {est.confidence:.0%} confidence interval (see 'method.interval')."
+                    + _rounded(config),
+        "ci_upper": f"Upper bound of the {est.confidence:.0%} confidence interval." + _rounded(config),
+        "margin_of_error": f"Margin of error at {est.margin_confidence:.0%} confidence: z × standard error."
+                           + _rounded(config),
+        "cv": "Coefficient of variation: standard error / estimate (empty when the estimate is 0)." + _rounded(config),
         "sample_size": "Unweighted number of sampled records in the base (the denominator).",
         "weighted_base": "Estimated population in the base (sum of weights)"
                          + (f", rounded to the nearest {config.disclosure.round_counts_to}."
@@ -52,8 +127,8 @@ def column_descriptions(config, domain_names) -> dict[str, str]:
         "weighted_count": "Estimated population with the characteristic (sum of weights)"
                           + (f", rounded to the nearest {config.disclosure.round_counts_to}."
                              if config.disclosure.round_counts_to else "."),
-        "design_effect": "Design effect: design variance / (p̂q̂/n).",
-        "effective_n": "Effective sample size: p̂q̂ / design variance, at most the sample size.",
+        "design_effect": "Design effect: design variance / (p̂q̂/n)." + _rounded(config),
+        "effective_n": "Effective sample size: p̂q̂ / design variance, at most the sample size." + _rounded(config),
         "status": "published, caution or suppressed (see 'status_codes').",
         "reasons": "';'-separated reason codes (see 'reason_codes'); empty when none applies.",
         "note": "Footnote for a reader, explaining the reason codes.",
@@ -110,7 +185,7 @@ def build_metadata(config, domain_names) -> dict:
         "release": {"name": s.release.name, "title": s.release.title, "publisher": s.release.publisher,
                     "description": s.release.description.strip()},
         "produced_by": {"software": "ratebook", "version": __version__},
-        "cautions": CAUTIONS,
+        "cautions": cautions(config),
         "columns": column_descriptions(config, domain_names),
         "status_codes": {
             Status.PUBLISHED.value: "Printed without reservation.",
@@ -130,6 +205,7 @@ def build_metadata(config, domain_names) -> dict:
                                 "description": "z × standard error with z = Φ⁻¹(1 − α/2)"},
             "item_nonresponse": "A record in an indicator's universe whose condition columns are missing "
                                 "leaves that indicator's base (it is not counted as 'no').",
+            "disclosure": disclosure_text(config),
             # every method a config may choose, so a reader can compare with what this release used
             "available_intervals": dict(intervals.METHOD_DESCRIPTIONS),
             "available_replicate_methods": dict(variance.REPLICATE_DESCRIPTIONS),

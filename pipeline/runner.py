@@ -176,16 +176,21 @@ def run(config_path: str | Path, *, release_id: str | None = None, replace: bool
         t = time.perf_counter()
         frame = estimate.estimate(cells, config)
         timings["estimate"] = time.perf_counter() - t
-        reporter.stage("assess + protect")
+        reporter.stage("assess")
         t = time.perf_counter()
         frame, severity, reasons = assess.assess(frame, config)
-        frame = protect.protect(frame, severity, reasons, config)
+        timings["assess"] = time.perf_counter() - t
+        reporter.stage("protect: disclosure control and audit")
+        t = time.perf_counter()
+        # raises ReleaseRefused (exit 4) when the audit fails: nothing is staged or published
+        frame, disclosure = protect.protect_release(frame, severity, reasons, config, geography=found.geography)
         public = protect.public_estimates(frame, config, layout.names)
-        timings["assess_protect"] = time.perf_counter() - t
+        timings["protect"] = time.perf_counter() - t
 
         reporter.stage("publish")
         t = time.perf_counter()
         manifest = _manifest(config, release_id, found)
+        manifest["disclosure"] = disclosure
         staging = out_dir / f"{STAGING_PREFIX}{release_id}-{os.getpid()}"
         try:
             manifest = publish.write_release(staging, public=public, cells=frame, rejects=found.rejects,

@@ -107,10 +107,18 @@ def test_fay_needs_rho(tmp_path):
     assert "design.replicates.fay_rho" in text
 
 
-def test_complementary_suppression_is_not_silently_accepted(tmp_path):
-    # not implemented in this version: asking for it must fail loudly, not publish unprotected cells
-    text = problems_of(tmp_path, lambda s: s["disclosure"].update(complementary=True))
-    assert "disclosure.complementary" in text
+def test_complementary_suppression_is_accepted_and_its_settings_checked(tmp_path):
+    # complementary suppression is implemented now: true loads; its settings are validated with
+    # their key paths like every other key
+    config = load_with(tmp_path, lambda s: s["disclosure"].update(complementary=True, cost="cells",
+                                                                  protection={"relative": 0.5, "respondents": 5}))
+    assert config.disclosure.complementary is True
+    assert config.disclosure.protection.respondents == 5
+    text = problems_of(tmp_path, lambda s: s["disclosure"].update(cost="cell", protection={"relativ": 0.5},
+                                                                  decimals=-1))
+    assert "disclosure.cost" in text and "did you mean 'cells'?" in text
+    assert "disclosure.protection" in text and "did you mean 'relative'?" in text
+    assert "disclosure.decimals" in text
 
 
 def test_missing_file_and_bad_yaml(tmp_path):

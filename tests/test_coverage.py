@@ -88,6 +88,7 @@ def _release_counts(tmp_path, population, microdata, variance: str, interval: st
     microdata.to_parquet(raw / "demo_persons.parquet", index=False)
     population.areas.to_csv(raw / "demo_areas.csv", index=False)
     settings = yaml.safe_load(coverage.DEMO_CONFIG.read_text())
+    settings["disclosure"]["complementary"] = False  # as the study does: it judges reliability rules
     if variance == "linearization":
         settings["design"] = yaml.safe_load(coverage.LINEARIZATION_CONFIG.read_text())["design"]
     elif variance == "replicate":

@@ -40,4 +40,7 @@ def test_cautions_say_what_the_flags_mean_and_defer_to_local_rules():
     assert "caution" in text and "suppressed" in text
     assert "defaults" in text and "own quality standards" in text
     assert "local law" in text
-    assert "complementary suppression is not applied" in text
+    # complementary suppression is on in the demo: the cautions say what it does and that the
+    # office's rules decide; switched off, they say it is not applied
+    assert "complementary" in text and "audit" in text and "protection level" in text
+    assert "complementary suppression is not applied" not in text

@@ -1,21 +1,45 @@
-"""Primary disclosure rule and the public view (DESIGN §3): a cell is withheld when
-0 < x < k or 0 < n − x < k on unweighted counts (threshold rule, common practice)."""
+"""The protect stage (DESIGN §3, §4): primary rules, the public view and its rounding, and a real
+release of the small demo audited independently.
+
+The independent audit reads only what a reader has — the public CSV and the geography lookup —
+builds the additive relations itself (parent area = sum of its children, 'all' = sum of its
+categories) and asks scipy.optimize.linprog directly how far each confidential cell's value can
+move. It shares no code with pipeline.methods.suppression. The protection level it checks
+(DESIGN §4, README 'Disclosure control'): width >= max(0.5 × value, 5 × mean weight) for the
+weighted count of each side held by fewer than 5 respondents, >= 5 for the sample size. The true
+values (to compute those levels and to check the truth lies inside) come from internal/cells.parquet.
+"""
 
 from __future__ import annotations
+
+import csv
+import json
+import re
+import shutil
 
 import numpy as np
 import pandas as pd
 import pytest
+from scipy import sparse
+from scipy.optimize import linprog
 
 from pipeline.config import load_config
+from pipeline.errors import ReleaseRefused
 from pipeline.flags import empty_outcome
+from pipeline.runner import run
 from pipeline.stages.protect import FIGURE_COLUMNS, protect, public_columns, public_estimates
-from tests.conftest import DEMO_CONFIG
+from tests.conftest import DEMO_CONFIG, demo_settings, write_config
+
+K = 5            # disclosure.min_respondents of the demo config
+RELATIVE = 0.5   # disclosure.protection.relative (default)
+STEP = 10        # disclosure.round_counts_to
+DECIMALS = 4     # disclosure.decimals
+MIN_SAMPLE = 30  # reliability.min_sample
 
 
 @pytest.fixture(scope="module")
 def config():
-    return load_config(DEMO_CONFIG)  # min_respondents 5, round_counts_to 10
+    return load_config(DEMO_CONFIG)
 
 
 def frame(rows):
@@ -34,6 +58,16 @@ def run_protect(config, rows):
     return protect(f, severity, reasons, config)
 
 
+def config_with(tmp_path, **disclosure):
+    settings = demo_settings()
+    settings["disclosure"].update(disclosure)
+    return load_config(write_config(tmp_path / "c.yaml", settings))
+
+
+# --------------------------------------------------------------------------------------------
+# Primary rules and the public view
+
+
 def test_threshold_rule(config):
     # (n, x): x = 4 < 5 withheld; x = 5 not; n − x = 4 withheld; x = 0 and x = n are not this rule's business
     out = run_protect(config, [(100, 4, 1000, 40), (100, 5, 1000, 50), (100, 96, 1000, 960),
@@ -42,6 +76,17 @@ def test_threshold_rule(config):
     assert out["status"].tolist() == ["suppressed", "published", "suppressed", "published", "published"]
     assert out["reasons"].tolist()[0] == "few_respondents"
     assert "singled out" in out["note"].iloc[0]
+
+
+def test_unanimous_rule_withholds_small_all_or_none_cells_under_the_same_code(tmp_path):
+    config = config_with(tmp_path, unanimous_below=10)
+    # (n, x): 8 persons, none has it; 8 persons, all have it; 12 persons, none (not under 10)
+    out = run_protect(config, [(8, 0, 800, 0), (8, 8, 800, 800), (12, 0, 1200, 0)])
+    assert out["rule_unanimous"].tolist() == [True, True, False]
+    assert out["status"].tolist() == ["suppressed", "suppressed", "published"]
+    # the public code does not say which: 'all or none' would itself disclose
+    assert out["reasons"].tolist()[:2] == ["few_respondents", "few_respondents"]
+    assert "possibly none" in out["note"].iloc[0]
 
 
 def test_public_view_empties_every_figure_of_a_withheld_cell(config):
@@ -57,5 +102,268 @@ def test_weighted_counts_rounded_half_up(config):
                            ["sex", "age_group"])
     assert out["weighted_base"].tolist() == [1240.0, 1230.0]
     assert out["weighted_count"].tolist() == [620.0, 610.0]
-    # the estimate is computed before rounding and is not changed by it
-    assert out.loc[0, "estimate"] == pytest.approx(615 / 1235)
+
+
+def test_estimates_and_errors_rounded_to_decimals_in_the_public_file_only(config, tmp_path):
+    cells = run_protect(config, [(100, 50, 1235, 615), (100, 50, 1600, 500.08)])
+    out = public_estimates(cells, config, ["sex", "age_group"])
+    # 615/1235 = 0.497975708... -> 0.4980; 500.08/1600 = 0.31255 -> 0.3126 (a half rounds up)
+    assert out["estimate"].tolist() == [0.498, 0.3126]
+    assert out["std_error"].tolist() == [0.01, 0.01]
+    assert cells["estimate"].iloc[0] == pytest.approx(615 / 1235, rel=1e-15)  # internal stays unrounded
+    unrounded = public_estimates(cells, config_with(tmp_path, decimals=None), ["sex", "age_group"])
+    assert unrounded["estimate"].iloc[0] == pytest.approx(615 / 1235, rel=1e-15)
+
+
+# --------------------------------------------------------------------------------------------
+# A real release, audited independently
+
+
+@pytest.fixture(scope="module")
+def release(tmp_path_factory, small_demo):
+    root = tmp_path_factory.mktemp("protect")
+    shutil.copytree(small_demo / "data", root / "data")
+    (root / "configs").mkdir()
+    summary = run(write_config(root / "configs" / "demo.yaml", demo_settings()), release_id="p1")
+    rel = summary.release_dir
+    return {"root": root, "dir": rel,
+            "public_csv": pd.read_csv(rel / "public" / "estimates.csv", dtype={"geo_code": str}, keep_default_na=False,
+                                      na_values={c: [""] for c in FIGURE_COLUMNS}),
+            "cells": pd.read_parquet(rel / "internal" / "cells.parquet"),
+            "manifest": json.loads((rel / "manifest.json").read_text()),
+            "lookup": pd.read_csv(root / "data" / "raw" / "demo_areas.csv", dtype=str)}
+
+
+LEVELS = ["nation", "region", "district", "area"]
+
+
+def reader_relations(public: pd.DataFrame, lookup: pd.DataFrame) -> sparse.csr_matrix:
+    """The additive relations of one indicator's rows, from the public keys and the lookup alone:
+    each row that has a parent unit (same categories) or an 'all' margin over one domain (same
+    unit) is a part of that total."""
+    parent = {}
+    for upper, lower in zip(LEVELS[:-1], LEVELS[1:]):
+        for p, c in lookup[[f"{upper}_code", f"{lower}_code"]].drop_duplicates().itertuples(index=False):
+            parent[(lower, c)] = (upper, p)
+    key = {k: i for i, k in enumerate(zip(public["geo_level"], public["geo_code"], public["sex"], public["age_group"]))}
+    groups: dict[tuple, list[int]] = {}
+    for i, (level, code, sex, age) in enumerate(key):
+        totals = []
+        if level != "nation":
+            totals.append(("geo", key.get((*parent[(level, code)], sex, age))))
+        if sex != "all":
+            totals.append(("sex", key.get((level, code, "all", age))))
+        if age != "all":
+            totals.append(("age", key.get((level, code, sex, "all"))))
+        for kind, total in totals:
+            if total is not None:
+                groups.setdefault((kind, total), []).append(i)
+    rows, cols, vals = [], [], []
+    for r, ((_, total), parts) in enumerate(groups.items()):
+        rows += [r] * (len(parts) + 1)
+        cols += parts + [total]
+        vals += [1.0] * len(parts) + [-1.0]
+    return sparse.csr_matrix((vals, (rows, cols)), shape=(len(groups), len(public)))
+
+
+def reader_bounds(public: pd.DataFrame) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """What the public file says about each row's weighted count, weighted count without the
+    characteristic (base − count) and sample size: a published count within ± STEP/2, narrowed
+    by count = estimate × base with the estimate within ± half a unit of its last decimal; a
+    withheld one between 0 and the published grand total; sample sizes exact, and for a withheld
+    row what its reason codes say (no_sample: 0; sample_too_small: below MIN_SAMPLE; else at least)."""
+    hidden = (public["status"] == "suppressed").to_numpy()
+    reasons = public["reasons"].fillna("")
+    none = reasons.str.contains("no_sample").to_numpy()
+    too_small = reasons.str.contains("sample_too_small").to_numpy()
+    b, c, p = (public[col].to_numpy(dtype=float) for col in ("weighted_base", "weighted_count", "estimate"))
+    half, dp = STEP / 2, 0.5 * 10.0 ** -DECIMALS
+    p_lo, p_hi = np.clip(p - dp, 0, 1), np.clip(p + dp, 0, 1)
+    c_lo = np.maximum.reduce([c - half, p_lo * (b - half), np.zeros(len(c))])
+    c_hi = np.minimum(c + half, p_hi * (b + half))
+    w_lo = np.maximum.reduce([b - half - c_hi, (1 - p_hi) * (b - half), np.zeros(len(c))])
+    w_hi = np.minimum(b + half - c_lo, (1 - p_lo) * (b + half))
+    n = public["sample_size"].to_numpy(dtype=float)
+    top = ((public["geo_level"] == "nation") & (public["sex"] == "all") & (public["age_group"] == "all")).to_numpy()
+    out = {}
+    for name, lo, hi in (("count", c_lo, c_hi), ("complement", w_lo, w_hi), ("sample", n, n)):
+        cap = float(hi[top].sum())
+        lo = np.where(hidden, 0.0, lo)
+        hi = np.where(hidden, cap, hi)
+        if name == "sample":
+            lo = np.where(hidden & too_small, 1.0, np.where(hidden, MIN_SAMPLE, lo))
+            hi = np.where(hidden & too_small, MIN_SAMPLE - 1.0, hi)
+        out[name] = (np.where(none, 0.0, lo), np.where(none, 0.0, hi))
+    return out
+
+
+def reader_range(M, bounds, i) -> tuple[float, float]:
+    lo, hi = bounds
+    found = []
+    for sign in (1.0, -1.0):
+        c = np.zeros(M.shape[1])
+        c[i] = -sign  # minimise −y_i = maximise y_i, then minimise y_i
+        res = linprog(c, A_eq=M, b_eq=np.zeros(M.shape[0]), bounds=np.column_stack([lo, hi]), method="highs")
+        assert res.status == 0, res.message
+        found.append(res.x[i])
+    return found[1], found[0]
+
+
+def test_no_confidential_cell_can_be_narrowed_below_the_protection_level(release):
+    public, cells = release["public_csv"], release["cells"]
+    checked, rng = 0, np.random.default_rng(11)
+    for indicator in ["smoker", "chronic_condition", "addiction_treatment"]:
+        rows = np.flatnonzero((public["indicator"] == indicator).to_numpy())
+        pub, truth = public.iloc[rows].reset_index(drop=True), cells.iloc[rows].reset_index(drop=True)
+        assert (pub["geo_code"].to_numpy() == truth["geo_code"].to_numpy()).all()
+        M = reader_relations(pub, release["lookup"])
+        bounds = reader_bounds(pub)
+        primary = pub["reasons"].fillna("").str.contains("few_respondents").to_numpy()
+        comp = pub["reasons"].fillna("").str.contains("complementary").to_numpy()
+        A = abs(M)
+        beside = np.asarray((A.T @ (A @ comp.astype(float))) > 0).ravel()
+        # the cells that needed complements are the ones at risk; add a few others at random
+        chosen = list(np.flatnonzero(primary & beside)[:8])
+        others = np.flatnonzero(primary & ~beside)
+        chosen += list(rng.choice(others, size=min(4, len(others)), replace=False))
+        for i in chosen:
+            n, x = truth.loc[i, "sample_size"], truth.loc[i, "respondents"]
+            base, count = truth.loc[i, "weighted_base"], truth.loc[i, "weighted_count"]
+            sides = [("count", count, x), ("complement", base - count, n - x)]
+            for name, value, persons in sides:
+                if not 0 < persons < K:
+                    continue
+                lo, hi = reader_range(M, bounds[name], i)
+                assert lo - 1e-6 <= value <= hi + 1e-6, (indicator, i, name)
+                need = max(RELATIVE * value, K * base / n)
+                assert hi - lo >= need * (1 - 1e-7), (indicator, truth.loc[i, "geo_code"], name, lo, hi, need)
+            lo, hi = reader_range(M, bounds["sample"], i)
+            assert lo - 1e-9 <= n <= hi + 1e-9 and hi - lo >= K - 1e-7, (indicator, i, "sample", lo, hi)
+            checked += 1
+    assert checked >= 20
+
+
+def test_without_complementary_cells_a_confidential_cell_would_be_recoverable(release):
+    """The check above can fail: publish the complementary cells again (their true figures, as the
+    internal file holds them) and some confidential cell's range collapses below its level."""
+    public, cells = release["public_csv"].copy(), release["cells"]
+    comp = public["reasons"].fillna("").str.contains("complementary").to_numpy()
+    assert comp.any()
+    indicator = public.loc[comp, "indicator"].value_counts().idxmax()
+    rows = np.flatnonzero((public["indicator"] == indicator).to_numpy())
+    pub, truth = public.iloc[rows].reset_index(drop=True), cells.iloc[rows].reset_index(drop=True)
+    back = pub["reasons"].fillna("").str.contains("complementary").to_numpy()
+    pub.loc[back, "status"] = "published"
+    pub.loc[back, "weighted_count"] = np.floor(truth.loc[back, "weighted_count"] / STEP + 0.5) * STEP
+    pub.loc[back, "weighted_base"] = np.floor(truth.loc[back, "weighted_base"] / STEP + 0.5) * STEP
+    pub.loc[back, "estimate"] = np.floor(truth.loc[back, "estimate"] * 10 ** DECIMALS + 0.5) / 10 ** DECIMALS
+    pub.loc[back, "sample_size"] = truth.loc[back, "sample_size"]
+    M = reader_relations(pub, release["lookup"])
+    bounds = reader_bounds(pub)
+    A = abs(M)
+    beside = np.flatnonzero(np.asarray((A.T @ (A @ back.astype(float))) > 0).ravel()
+                            & pub["reasons"].fillna("").str.contains("few_respondents").to_numpy())
+    short = 0
+    for i in beside[:40]:
+        n, x = truth.loc[i, "sample_size"], truth.loc[i, "respondents"]
+        base, count = truth.loc[i, "weighted_base"], truth.loc[i, "weighted_count"]
+        for name, value, persons in (("count", count, x), ("complement", base - count, n - x)):
+            if 0 < persons < K:
+                lo, hi = reader_range(M, bounds[name], i)
+                short += hi - lo < max(RELATIVE * value, K * base / n)
+        lo, hi = reader_range(M, bounds["sample"], i)
+        short += hi - lo < K
+    assert short > 0
+
+
+def test_every_figure_of_a_hidden_row_is_empty_in_parquet_and_csv(release):
+    est = pd.read_parquet(release["dir"] / "public" / "estimates.parquet")
+    hidden = (est["status"] == "suppressed").to_numpy()
+    comp = est["reasons"].fillna("").str.contains("complementary").to_numpy()
+    assert comp.any() and hidden[comp].all()
+    assert est.loc[hidden, FIGURE_COLUMNS].isna().all().all()
+    with open(release["dir"] / "public" / "estimates.csv", newline="", encoding="utf-8") as fh:
+        rows = list(csv.DictReader(fh))
+    for row, is_hidden in zip(rows, hidden):
+        if is_hidden:
+            assert all(row[c] == "" for c in FIGURE_COLUMNS), row
+    assert sum(r["status"] == "suppressed" for r in rows) == int(hidden.sum())
+
+
+def test_metadata_holds_no_cell_values(release):
+    text = (release["dir"] / "public" / "metadata.json").read_text()
+    cells = release["cells"]
+    # no unit code below the nation, and none of the weighted counts of a withheld cell, in any
+    # form a writer might print it (5+ digits: shorter numbers, such as the years of the cited
+    # sources, would match by chance)
+    for code in release["lookup"]["area_code"].tolist() + release["lookup"]["district_code"].tolist():
+        assert f'"{code}"' not in text, code
+    hidden = cells[cells["status"] == "suppressed"]
+    numbers = set(re.findall(r"\d+(?:\.\d+)?", text))
+    checked = 0
+    for value in hidden["weighted_count"]:
+        if value >= 10_000:
+            checked += 1
+            for form in (f"{value:.0f}", f"{value:.1f}", f"{np.floor(value / STEP + 0.5) * STEP:.0f}"):
+                assert form not in numbers, form
+    assert checked > 10
+    meta = json.loads(text)
+    assert "complementary" in meta["reason_codes"] and "audit" in meta["method"]["disclosure"]
+
+
+def test_cells_carry_the_audit_and_the_manifest_its_summary(release):
+    cells, manifest = release["cells"], release["manifest"]
+    summary = manifest["disclosure"]
+    primary = (cells["rule_few_respondents"] | cells["rule_unanimous"]).to_numpy()
+    comp = cells["rule_complementary"].to_numpy()
+    assert summary["complementary_suppression"] is True
+    assert summary["primary_cells"] == int(primary.sum()) > 0
+    assert summary["complementary_cells"] == int(comp.sum()) == summary["information_lost"]["cells"]
+    assert summary["audit"]["result"] == "passed"
+    assert set(summary["indicators"]) == set(cells["indicator"])
+    assert cells.loc[comp, "reasons"].str.contains("complementary").all()
+    assert cells.loc[primary, "audit_ok"].eq(True).all() and cells.loc[~primary, "audit_ok"].isna().all()
+    # the proven range holds the truth and is as wide as required, for every protected side
+    p = cells[primary]
+    few_have = (p["respondents"] > 0) & (p["respondents"] < K)
+    lo, hi, value = p["audit_lower"], p["audit_upper"], p["weighted_count"]
+    need = np.maximum(RELATIVE * value, K * p["weighted_base"] / p["sample_size"])
+    assert ((lo[few_have] <= value[few_have] + 1e-6) & (value[few_have] <= hi[few_have] + 1e-6)).all()
+    assert (hi - lo)[few_have].ge(need[few_have] * (1 - 1e-7)).all()
+    assert (p["audit_sample_upper"] - p["audit_sample_lower"]).ge(K - 1e-7).all()
+
+
+# --------------------------------------------------------------------------------------------
+# Refusal, and complementary suppression switched off
+
+
+def small_settings(**disclosure) -> dict:
+    """One indicator, no breakdowns: a table of 336 cells, quick to protect."""
+    settings = demo_settings()
+    settings["indicators"] = {"smoker": settings["indicators"]["smoker"]}
+    settings["tables"] = [{"by": []}]
+    settings["disclosure"].update(disclosure)
+    return settings
+
+
+def test_a_release_whose_audit_fails_is_refused_naming_the_cells(project):
+    # a protection level no pattern can reach: 10^6 times each value
+    config = write_config(project / "configs" / "strict.yaml", small_settings(protection={"relative": 1e6}))
+    out = project / "data" / "out"
+    with pytest.raises(ReleaseRefused) as info:
+        run(config, release_id="strict")
+    assert info.value.exit_code == 4  # DESIGN §3: release refused
+    assert "disclosure audit failed" in info.value.message
+    assert info.value.problems and "smoker" in info.value.problems[0]
+    assert not (out / "strict").exists() and not (out / "latest").exists()
+
+
+def test_switched_off_no_cell_is_added_and_the_release_says_so(project):
+    config = write_config(project / "configs" / "off.yaml", small_settings(complementary=False))
+    summary = run(config, release_id="off")
+    cells = pd.read_parquet(summary.release_dir / "internal" / "cells.parquet")
+    meta = json.loads((summary.release_dir / "public" / "metadata.json").read_text())
+    manifest = json.loads((summary.release_dir / "manifest.json").read_text())
+    assert not cells["rule_complementary"].any() and cells["audit_ok"].isna().all()
+    assert manifest["disclosure"]["complementary_suppression"] is False
+    assert any("switched off" in c for c in meta["cautions"])

@@ -56,7 +56,7 @@ def star98_config(root, interval: str) -> dict:
         "estimation": {"interval": interval, "confidence": 0.95, "margin_confidence": 0.95},
         # no reliability or disclosure rule may withhold a district here: the check is the arithmetic
         "reliability": {"min_sample": 0, "min_expected": 0, "cv_caution": 1e9, "cv_suppress": 1e9},
-        "disclosure": {"min_respondents": 0, "round_counts_to": 0},
+        "disclosure": {"min_respondents": 0, "round_counts_to": 0, "decimals": None},
         "output": {"dir": "out", "formats": ["parquet", "csv"]},
     }
 

@@ -1,35 +1,312 @@
 """Protect: disclosure control. This stage alone decides what is withheld.
 
-Primary suppression by the threshold rule on unweighted counts: a cell is withheld when
-0 < x < k or 0 < n − x < k (k = disclosure.min_respondents), so that no small group of
-respondents who have, or lack, the characteristic can be singled out. The rule and its threshold
-defer to the office's confidentiality rules and local law.
+1. Primary suppression by the threshold rule on unweighted counts: a cell is withheld when
+   0 < x < k or 0 < n − x < k (k = disclosure.min_respondents), so that no small group of
+   respondents who have, or lack, the characteristic can be singled out; optionally also when
+   x = 0 or x = n in a cell of fewer than disclosure.unanimous_below persons (everyone's answer is
+   then known). Both carry the public code `few_respondents`: a code of its own for 'all or none'
+   would tell a reader what the withheld figure hides.
+2. Complementary suppression (disclosure.complementary): per indicator, further cells are
+   withheld, chosen by pipeline.methods.suppression.protect_table, so that no confidential cell can
+   be worked out from the published weighted counts and sample sizes through the table's additive
+   relations (parent area = sum of its children; 'all' = sum of its categories).
+3. Audit: for every confidential cell, a range of values a reader cannot rule out, proven by
+   linear programming, must be at least as wide as disclosure.protection asks; otherwise the
+   release is refused (ReleaseRefused, exit 4) naming the cells, and nothing is published.
 
-Complementary suppression (so that withheld cells cannot be recovered by subtraction) is not in
-this version; the config refuses `complementary: true` rather than pretend.
+What the audit assumes a reader knows (DESIGN §4): the public file. Published weighted counts and
+bases are known to ± half the rounding step, and a published estimate, rounded to
+disclosure.decimals, narrows the weighted count further (count = estimate × base); sample sizes
+are published exactly; a withheld cell without sample is known to be 0 (its reason code says so);
+`sample_too_small` on a withheld cell says n < reliability.min_sample, its absence n >= it; no
+subgroup exceeds the published grand total. Three quantities are audited, each over its own
+additive table: the weighted count with the characteristic (for cells where few or none have it),
+the weighted count without it, i.e. base − count (for cells where few or none lack it), and the
+sample size (for every confidential cell). The weighted base is the sum of the first two.
+
+The rules and thresholds defer to the office's confidentiality rules and local law.
 """
 
 from __future__ import annotations
 
+import time
+
 import numpy as np
 import pandas as pd
 
-from pipeline.flags import Reason, Status, apply_rule, reason_descriptions, settle
+from pipeline.errors import ReleaseRefused
+from pipeline.flags import SEVERITY, Reason, Status, apply_rule, reason_descriptions, settle
+from pipeline.methods import suppression
+
+FIGURE_COLUMNS = ["estimate", "std_error", "ci_lower", "ci_upper", "margin_of_error", "cv", "sample_size",
+                  "weighted_base", "weighted_count", "design_effect", "effective_n"]
+# Figures that are not counts: rounded to disclosure.decimals in the public files, so that none
+# of them gives the estimate back more precisely than the estimate itself is printed.
+DECIMAL_COLUMNS = ["estimate", "std_error", "ci_lower", "ci_upper", "margin_of_error", "cv", "design_effect",
+                   "effective_n"]
+# Per-cell audit results in internal/cells.parquet (NaN / NA where the cell needs no protection).
+AUDIT_COLUMNS = ["audit_lower", "audit_upper", "audit_complement_lower", "audit_complement_upper",
+                 "audit_sample_lower", "audit_sample_upper", "audit_ok"]
+_QUANTITY_COLUMNS = {"weighted_count": ("audit_lower", "audit_upper"),
+                     "weighted_complement": ("audit_complement_lower", "audit_complement_upper"),
+                     "sample_size": ("audit_sample_lower", "audit_sample_upper")}
+_NAMED_CELLS = 20  # cells listed when the audit refuses a release
 
 
 def protect(frame: pd.DataFrame, severity: np.ndarray, reasons: list[list[str]], config) -> pd.DataFrame:
+    """Primary suppression only (threshold and unanimous rules). A release goes through
+    `protect_release`, which adds complementary suppression and the audit; this is for studies
+    that need the primary outcome alone (the coverage study)."""
     f = frame.copy()
-    k = config.disclosure.min_respondents
-    n = f["sample_size"].to_numpy()
-    x = f["respondents"].to_numpy()
-    f["rule_few_respondents"] = ((x > 0) & (x < k)) | ((n - x > 0) & (n - x < k))
-    apply_rule(severity, reasons, f["rule_few_respondents"].to_numpy(), Reason.FEW_RESPONDENTS, Status.SUPPRESSED)
+    _primary(f, severity, reasons, config)
     settle(f, severity, reasons, reason_descriptions(config))
     return f
 
 
-FIGURE_COLUMNS = ["estimate", "std_error", "ci_lower", "ci_upper", "margin_of_error", "cv", "sample_size",
-                  "weighted_base", "weighted_count", "design_effect", "effective_n"]
+def _primary(f: pd.DataFrame, severity: np.ndarray, reasons: list[list[str]], config) -> suppression.PrimaryCells:
+    dis = config.disclosure
+    primary = suppression.primary_cells(f["sample_size"].to_numpy(), f["respondents"].to_numpy(),
+                                        min_respondents=dis.min_respondents, unanimous_below=dis.unanimous_below)
+    f["rule_few_respondents"] = primary.few_respondents
+    f["rule_unanimous"] = primary.unanimous
+    apply_rule(severity, reasons, primary.cells, Reason.FEW_RESPONDENTS, Status.SUPPRESSED)
+    return primary
+
+
+def protect_release(frame: pd.DataFrame, severity: np.ndarray, reasons: list[list[str]], config, *,
+                    geography) -> tuple[pd.DataFrame, dict]:
+    """Primary and complementary suppression and the audit. Returns the cells (with
+    `rule_complementary` and the audit columns) and a summary for the manifest. Raises
+    ReleaseRefused when the audit cannot prove every confidential cell protected."""
+    started = time.perf_counter()
+    f = frame.copy()
+    dis = config.disclosure
+    primary = _primary(f, severity, reasons, config)
+    f["rule_complementary"] = False
+    for col in AUDIT_COLUMNS[:-1]:
+        f[col] = np.nan
+    f["audit_ok"] = pd.array([pd.NA] * len(f), dtype="boolean")
+    if not dis.complementary:
+        settle(f, severity, reasons, reason_descriptions(config))
+        return f, {"complementary_suppression": False, "primary_cells": int(primary.cells.sum()),
+                   "note": "complementary suppression is off (disclosure.complementary: false): withheld "
+                           "cells may be recoverable by subtraction; no audit was run",
+                   "seconds": round(time.perf_counter() - started, 3)}
+
+    structure = _Structure(f, config, geography)
+    deadline = started + dis.time_limit_seconds
+    per_indicator, failures = {}, []
+    complementary = np.zeros(len(f), dtype=bool)
+    audit_ok = np.full(len(f), True)
+    totals = {"checks": 0, "proven_by_witnesses": 0, "proven_by_exact_range": 0}  # (cell, quantity) pairs
+    for indicator in f["indicator"].unique():
+        rows = np.flatnonzero(f["indicator"].to_numpy() == indicator)
+        table = structure.table(rows)
+        quantities = _quantities(f.iloc[rows], severity[rows], reasons, rows, primary, config, structure)
+        known = f["sample_size"].to_numpy()[rows] == 0
+        withheld = (severity[rows] >= SEVERITY[Status.SUPPRESSED]) & ~known
+        eligible = (severity[rows] < SEVERITY[Status.SUPPRESSED]) & ~known
+        cost = suppression.suppression_cost(table, kind=dis.cost, weighted_base=f["weighted_base"].to_numpy()[rows])
+        result = suppression.protect_table(table, quantities=quantities, withheld=withheld, eligible=eligible,
+                                           cost=cost, time_limit=max(deadline - time.perf_counter(), 0.0))
+        complementary[rows] = result.complementary
+        for audit in result.audits:
+            lo_col, hi_col = _QUANTITY_COLUMNS[audit.name]
+            f.loc[f.index[rows], lo_col] = audit.lower
+            f.loc[f.index[rows], hi_col] = audit.upper
+            audit_ok[rows] &= audit.ok
+            checked = (audit.required > 0) & result.hidden
+            totals["checks"] += int(checked.sum())
+            totals["proven_by_exact_range"] += int((checked & audit.exact & audit.ok).sum())
+            totals["proven_by_witnesses"] += int((checked & ~audit.exact & audit.ok).sum())
+        failures += [rows[i] for i in np.flatnonzero(result.failed)]
+        base = f["weighted_base"].to_numpy()[rows]
+        per_indicator[str(indicator)] = {
+            "primary_cells": int(primary.cells[rows].sum()),
+            "complementary_cells": int(result.complementary.sum()),
+            "complementary_weighted_base": round(float(base[result.complementary].sum()), 1),
+            "cost": round(result.cost, 3), "method": result.method, "solver_status": result.status,
+            "rounds": result.rounds, "seconds": round(result.seconds, 3)}
+
+    if failures:
+        raise ReleaseRefused(
+            f"disclosure audit failed: {len(failures)} confidential cell(s) can be narrowed down below "
+            f"disclosure.protection from the published figures; nothing is published",
+            [_describe(f, i, structure.domain_names) for i in sorted(failures)[:_NAMED_CELLS]]
+            + ([f"... and {len(failures) - _NAMED_CELLS} more"] if len(failures) > _NAMED_CELLS else []))
+
+    apply_rule(severity, reasons, complementary, Reason.COMPLEMENTARY, Status.SUPPRESSED)
+    f["rule_complementary"] = complementary
+    protected = primary.cells
+    f["audit_ok"] = pd.array(np.where(protected, audit_ok, False), dtype="boolean")
+    f.loc[~protected, "audit_ok"] = pd.NA
+    settle(f, severity, reasons, reason_descriptions(config))
+    publishable = int((severity < SEVERITY[Status.SUPPRESSED]).sum() + complementary.sum())
+    base = f["weighted_base"].to_numpy()
+    summary = {
+        "complementary_suppression": True,
+        "primary_cells": int(primary.cells.sum()),
+        "complementary_cells": int(complementary.sum()),
+        "information_lost": {
+            "cells": int(complementary.sum()),
+            "share_of_cells_that_passed_the_other_rules": round(complementary.sum() / publishable, 4)
+            if publishable else 0.0,
+            "weighted_base": round(float(base[complementary].sum()), 1),
+            "cost": round(sum(v["cost"] for v in per_indicator.values()), 3),
+            "cost_kind": dis.cost},
+        "protection": _protection_text(config),
+        "audit": {"result": "passed", "quantities": list(_QUANTITY_COLUMNS), **totals},
+        "seconds": round(time.perf_counter() - started, 3),
+        "indicators": per_indicator,
+    }
+    return f, summary
+
+
+def _protection_text(config) -> dict:
+    dis = config.disclosure
+    return {"relative": dis.protection.relative, "respondents": _respondents(config),
+            "rule": "upper − lower of the range a reader can work out >= max(relative × value, respondents "
+                    "× the cell's mean weight) for weighted counts, >= respondents for the sample size"}
+
+
+def _respondents(config) -> int:
+    p = config.disclosure.protection
+    return config.disclosure.min_respondents if p.respondents is None else p.respondents
+
+
+def _describe(f: pd.DataFrame, i: int, domain_names) -> str:
+    row = f.iloc[i]
+    cats = ", ".join(f"{d}={row[d]}" for d in domain_names)
+    return (f"{row['indicator']} {row['geo_level']} {row['geo_code']} ({row['geo_name']})"
+            + (f" [{cats}]" if cats else "") + ": audit ranges "
+            + "; ".join(f"{q} {row[lo]:.6g}..{row[hi]:.6g}" for q, (lo, hi) in _QUANTITY_COLUMNS.items()
+                        if pd.notna(row[lo])))
+
+
+class _Structure:
+    """The linked-table layout of the cells table: geography units (numbered over all levels,
+    with their parents) and each cell's category per domain. Built once; each indicator's block
+    has the same layout, so its relations are built once too."""
+
+    def __init__(self, f: pd.DataFrame, config, geography):
+        self.domain_names = list(config.domains)
+        levels = list(geography.levels)
+        offsets, parent = {}, []
+        for depth, level in enumerate(levels):
+            offsets[level] = len(parent)
+            up = np.full(len(geography.codes[level]), -1, dtype=np.int64)
+            if depth:
+                above = levels[depth - 1]
+                up[geography.unit_index[level]] = geography.unit_index[above] + offsets[above]
+            parent.extend(up.tolist())
+        self.parent = np.array(parent, dtype=np.int64)
+        geo_level = f["geo_level"].to_numpy()
+        geo_code = f["geo_code"].to_numpy()
+        self.level = np.full(len(f), -1, dtype=np.int64)
+        self.unit = np.full(len(f), -1, dtype=np.int64)
+        for depth, level in enumerate(levels):
+            rows = geo_level == level
+            self.level[rows] = depth
+            self.unit[rows] = offsets[level] + pd.Index(geography.codes[level]).get_indexer(geo_code[rows])
+        if (self.unit < 0).any():
+            raise AssertionError("cells table holds geography units the lookup does not")  # roll_up made both
+        self.categories, columns = [], []
+        for name, dom in config.domains.items():
+            labels = list(dom.categories.values()) if dom.categories is not None else list(dom.labels)
+            self.categories.append(len(labels))
+            position = {label: k for k, label in enumerate(labels)}
+            position["all"] = -1
+            columns.append(f[name].map(position).to_numpy(dtype=np.int64))
+        self.domains = np.column_stack(columns) if columns else np.zeros((len(f), 0), dtype=np.int64)
+        self.top = (self.level == 0) & (self.domains < 0).all(axis=1)  # grand-total cells
+        self._tables: dict[bytes, suppression.LinkedTable] = {}
+
+    def table(self, rows: np.ndarray) -> suppression.LinkedTable:
+        key = np.column_stack([self.unit[rows], self.level[rows], self.domains[rows]]).tobytes()
+        if key not in self._tables:
+            self._tables[key] = suppression.linked_table(
+                unit=self.unit[rows], parent=self.parent, level=self.level[rows], domains=self.domains[rows],
+                categories=self.categories)
+        return self._tables[key]
+
+
+def _quantities(cells: pd.DataFrame, severity: np.ndarray, reasons: list[list[str]], rows: np.ndarray,
+                primary: suppression.PrimaryCells, config, structure: _Structure) -> list[suppression.Quantity]:
+    """The three audited quantities of one indicator's cells, with what a reader of the public
+    file knows about each (see the module docstring)."""
+    dis, rel = config.disclosure, config.reliability
+    step = float(dis.round_counts_to)
+    half = step / 2
+    n = cells["sample_size"].to_numpy(dtype=np.float64)
+    base = cells["weighted_base"].to_numpy(dtype=np.float64)
+    count = cells["weighted_count"].to_numpy(dtype=np.float64)
+    complement = np.maximum(base - count, 0.0)
+    known = n == 0
+    published = severity < SEVERITY[Status.SUPPRESSED]
+    # rounding intervals of the published counts (halves up: |rounded − true| <= step/2)
+    b_lo = np.maximum(suppression.round_half_up(base, step) - half, 0.0)
+    b_hi = suppression.round_half_up(base, step) + half
+    c_lo = np.maximum(suppression.round_half_up(count, step) - half, 0.0)
+    c_hi = suppression.round_half_up(count, step) + half
+    # a published estimate p (to `decimals`, so within ±δ) ties the count to the base
+    p = np.nan_to_num(cells["estimate"].to_numpy(dtype=np.float64), nan=0.0)
+    delta = 0.0 if dis.decimals is None else 0.5 * 10.0 ** (-dis.decimals)
+    p_pub = p if dis.decimals is None else _round_decimals(p, dis.decimals)
+    p_lo, p_hi = np.clip(p_pub - delta, 0, 1), np.clip(p_pub + delta, 0, 1)
+    c_lo, c_hi = np.maximum(c_lo, p_lo * b_lo), np.minimum(c_hi, p_hi * b_hi)
+    w_lo = np.maximum.reduce([b_lo - c_hi, (1 - p_hi) * b_lo, np.zeros(len(n))])
+    w_hi = np.minimum(b_hi - c_lo, (1 - p_lo) * b_hi)
+    # no subgroup exceeds the grand total, when the grand total is published
+    top = structure.top[rows]
+
+    def cap(upper: np.ndarray) -> float:
+        return float(upper[top].sum()) if top.any() and published[top].all() else np.inf
+
+    # sample sizes: what the reason codes of a withheld row say
+    n_lo = np.where(known, 0.0, 1.0)
+    n_hi = np.full(len(n), cap(n))
+    codes = [set(reasons[i]) for i in rows]
+    if rel.standard == "custom" and rel.min_sample > 0:
+        too_small = np.array([Reason.SAMPLE_TOO_SMALL.value in c for c in codes])
+        n_hi = np.where(too_small, rel.min_sample - 1.0, n_hi)
+        n_lo = np.where(~too_small & ~known, float(rel.min_sample), n_lo)
+    elif rel.standard == "nchs_2017":
+        # effective n >= 30 where not flagged, and the effective n never exceeds n
+        small_eff = np.array([Reason.EFFECTIVE_N_TOO_SMALL.value in c for c in codes])
+        n_lo = np.where(~small_eff & ~known, 30.0, n_lo)
+    n_lo, n_hi = np.minimum(n_lo, n), np.maximum(n_hi, n)  # the rules hold; guard float dust only
+
+    relative = dis.protection.relative
+    respondents = float(_respondents(config))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean_weight = np.where(n > 0, base / n, 0.0)
+    sel = primary.cells[rows]
+    need_count = np.where(primary.protect_count[rows], np.maximum(relative * count, respondents * mean_weight), 0.0)
+    need_complement = np.where(primary.protect_complement[rows],
+                               np.maximum(relative * complement, respondents * mean_weight), 0.0)
+    need_n = np.where(sel, respondents, 0.0)
+
+    def interval(lo, hi, value):
+        return np.where(known, 0.0, lo), np.where(known, 0.0, hi), value
+
+    out = []
+    for name, (lo, hi, value), upper, need in (
+            ("weighted_count", interval(c_lo, c_hi, count), cap(c_hi), need_count),
+            ("weighted_complement", interval(w_lo, w_hi, complement), cap(w_hi), need_complement),
+            ("sample_size", interval(n, n, n), None, need_n)):
+        if name == "sample_size":
+            h_lo, h_hi = n_lo, n_hi
+        else:
+            h_lo, h_hi = np.zeros(len(n)), np.full(len(n), upper)
+        out.append(suppression.Quantity(name=name, value=value, published_lower=lo, published_upper=hi,
+                                        hidden_lower=h_lo, hidden_upper=h_hi, required=need))
+    return out
+
+
+def _round_decimals(values: np.ndarray, decimals: int) -> np.ndarray:
+    """Halves up, like the counts; NaN stays NaN."""
+    scale = 10.0 ** decimals
+    return np.floor(np.asarray(values, dtype=np.float64) * scale + 0.5) / scale
 
 
 def public_columns(domain_names) -> list[str]:
@@ -39,13 +316,16 @@ def public_columns(domain_names) -> list[str]:
 
 def public_estimates(frame: pd.DataFrame, config, domain_names) -> pd.DataFrame:
     """The public table: every figure of a suppressed cell emptied, weighted counts rounded to
-    `disclosure.round_counts_to` (0 = unrounded), columns in the contract's order."""
+    `disclosure.round_counts_to` (0 = unrounded), figures that are not counts rounded to
+    `disclosure.decimals` (None = unrounded), columns in the contract's order."""
     out = frame[public_columns(domain_names)].copy()
     out["sample_size"] = out["sample_size"].astype("float64")
     step = config.disclosure.round_counts_to
-    if step:
-        for col in ("weighted_base", "weighted_count"):
-            out[col] = np.floor(out[col].to_numpy() / step + 0.5) * step  # halves round up
+    for col in ("weighted_base", "weighted_count"):
+        out[col] = suppression.round_half_up(out[col].to_numpy(dtype=np.float64), step)
+    if config.disclosure.decimals is not None:
+        for col in DECIMAL_COLUMNS:
+            out[col] = _round_decimals(out[col].to_numpy(dtype=np.float64), config.disclosure.decimals)
     withheld = out["status"].to_numpy() == Status.SUPPRESSED.value
     for col in FIGURE_COLUMNS:
         out.loc[withheld, col] = np.nan

@@ -1,0 +1,1276 @@
+"""Cell suppression for linked tables of additive counts, and the audit that proves it holds.
+
+A release publishes, for every geography unit and breakdown, counts that add up: a parent area
+is the sum of its children, an 'all' category the sum of its categories. Withholding a cell whose
+few respondents could be singled out (primary suppression) is not enough when its value can be
+recovered by subtraction from published totals; other cells must be withheld with it
+(complementary suppression). Whether a pattern holds is a question for linear programming: given
+everything published, which values could a withheld cell still take? (Hundepool et al. 2012,
+Statistical Disclosure Control, Wiley, ch. 4 and 5; Fischetti & Salazar-González 2000, JASA
+95:916.)
+
+    table = linked_table(unit=..., parent=..., level=..., domains=..., categories=...)
+    primary = primary_cells(n, x, min_respondents=5, unanimous_below=0)
+    result = protect_table(table, quantities=[...], withheld=..., eligible=..., cost=...)
+
+The reader's knowledge (the "attacker" of the literature), per quantity (weighted count, sample
+size, ...): each relation holds exactly (Σ parts − total = 0); a published figure lies in the
+interval its rounding leaves (`published_lower`..`published_upper`); a withheld figure lies in
+`hidden_lower`..`hidden_upper` (at least 0, at most the table's grand total, or tighter when the
+published reason codes say more). The feasible range of a withheld cell is the min and max of its
+value over that polyhedron.
+
+Protection rule (sliding protection level in Fischetti & Salazar-González's terms): a protected
+cell passes when the width of its feasible range, upper − lower, is at least `required`. The
+width is what limits how closely a reader can pin the value down, whichever side the true value
+sits on, and it treats a count of 0 (where no lower margin is possible) like any other.
+
+Complementary suppression (`protect_table`): a mixed-integer program (scipy.optimize.milp) chooses
+the cells to hide at least cost, subject to (a) no relation holds exactly one hidden cell that
+needs protecting or was chosen as a complement (two per relation is necessary, not sufficient);
+(b) capacity rows known before any audit: the ±1 dual on a single relation bounds a protected
+cell's width by the room its relation partners have; (c) the capacity cuts of Fischetti &
+Salazar-González: after a solve the audit finds the protected cells whose range is still too
+narrow, and the duals of each such cell's linear programs give a linear inequality in the
+hide/publish decisions that every protecting pattern satisfies and the current one violates.
+The first two solves are global; after that the cells already chosen are kept and only additions
+are optimised, so that the rounds converge (re-solving everything can trade one failure for
+another) and earlier proofs stay valid. A time limit bounds the optimisation; when it runs out
+(or the solver fails) a greedy pattern is built instead and audited the same way. Cells withheld
+for other reasons (unreliable figures) are not secrets: they need no protection but are hidden
+anyway, so they serve as complements at no cost.
+
+The audit (`audit_quantity`) proves, for every protected cell, that two sets of values a reader
+cannot rule out differ in that cell by at least the required width (a lower bound on the width
+of its range), cheapest proof first:
+1. short cycles of the table (a unit's categories traded against a sibling unit's, rectangles in
+   a two-way table) whose cells are all hidden, moved as far as the bounds allow;
+2. witness rounds: linear programs over a few copies of the hidden cells, each cell asked to come
+   out high in one copy and low in another (first over whole linked components, then over the
+   hidden cells within a few relations of the cells left, with the rounding slack of the published
+   cells beside them); rounds drop the cells proven;
+3. per cell, the exact min and max with published figures taken at face value (the hidden cells
+   linked to it only): proof, or a cut valid for the full reader model when even its dual bound
+   falls short;
+4. per cell, the exact min and max over every cell, published figures free within their rounding
+   intervals (scipy.optimize.linprog): the final word, with its cut.
+Proofs are kept and reused while the cells they move keep their bounds; the values of the proofs
+are the audit's ranges (`lower`, `upper`): a reader's full range contains them.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+from enum import Enum
+from itertools import combinations
+
+import numpy as np
+from scipy import sparse
+from scipy.optimize import Bounds, LinearConstraint, linprog, milp
+from scipy.sparse.csgraph import connected_components
+
+from pipeline.methods import lookup_member
+
+__all__ = [
+    "CostKind",
+    "LinkedTable",
+    "PrimaryCells",
+    "ProtectionResult",
+    "Quantity",
+    "QuantityAudit",
+    "audit_quantity",
+    "feasible_range",
+    "linked_table",
+    "primary_cells",
+    "protect_table",
+    "round_half_up",
+    "suppression_cost",
+]
+
+# A width within this relative distance of what is required counts as reaching it: the linear
+# programs are solved to HiGHS's default feasibility tolerance (1e-7), far below any count.
+_WIDTH_TOLERANCE = 1e-7
+# Witness rounds: copies per round, and rounds before the rest go to the exact programs. Three
+# copies let most neighbouring protected cells take their high and low sides in different
+# copies; after the first round each unproven cell keeps the copies it came out highest and
+# lowest in, which usually resolves the rest in a few rounds (see the module docstring).
+_WITNESS_COPIES = 3
+_WITNESS_ROUNDS = 8
+# Below this many unproven cells, witness programs span only the hidden cells within
+# _NEIGHBOURHOOD relations of them (three steps reach the far corner of a cube of cells).
+_FEW = 250
+_NEIGHBOURHOOD = 3
+# A witness round costs about as much as a handful of single-cell programs: rounds go on while
+# each proves at least this many cells (and the share of the rest given to the search).
+_MIN_GAIN = 4
+# Solves of the whole mixed-integer program; later rounds keep the cells chosen and add to them.
+_GLOBAL_ROUNDS = 2
+# Rounds of cuts in all before the greedy fall-back takes over.
+_MAX_CUT_ROUNDS = 40
+
+
+class CostKind(str, Enum):
+    """What hiding one more cell costs (stable names; the values appear in configs)."""
+
+    CELLS = "cells"                   # 2^(steps above the finest cells): detail before totals
+    WEIGHTED_BASE = "weighted_base"   # the population the cell stands for
+
+
+# --------------------------------------------------------------------------------------------
+# The linked table
+
+
+@dataclass(frozen=True)
+class LinkedTable:
+    """Cells of one indicator's tables and the additive relations between them.
+
+    relations: (relations × cells) sparse, +1 on each part and −1 on the total, so that every
+    row times the true values is 0. coarseness: (cells,) steps above the finest cells (geography
+    levels below the cell's level plus the number of 'all' domains), for the cost of hiding."""
+
+    relations: sparse.csr_matrix
+    coarseness: np.ndarray
+    # short moves that keep every relation (rows over cells): a unit's categories traded
+    # against a sibling unit's (see `_short_cycles`); they make cheap proofs for most cells
+    cycles: sparse.csr_matrix | None = None
+
+    @property
+    def n_cells(self) -> int:
+        return self.relations.shape[1]
+
+    @property
+    def n_relations(self) -> int:
+        return self.relations.shape[0]
+
+
+def linked_table(*, unit, parent, level, domains, categories) -> LinkedTable:
+    """The relations of a table of cells keyed by geography unit and domain categories.
+
+    unit: (cells,) integer id of each cell's geography unit; parent: (units,) id of each unit's
+    parent unit, −1 at the top; level: (cells,) depth of the unit (0 = coarsest); domains:
+    (cells, D) category position in each domain, −1 for 'all'; categories: (D,) number of
+    categories of each domain.
+
+    Relations: a parent unit's cell is the sum of its children's cells with the same categories
+    (where the breakdown goes down to the children's level), and a cell is the sum of the cells
+    that split it by the categories of further domains, for each smallest such breakdown present
+    at that level (so that [sex] and [age] each split 'all', and [sex, age] splits both). Every
+    relation must be complete: all children units and all category combinations present."""
+    unit = np.asarray(unit, dtype=np.int64)
+    parent = np.asarray(parent, dtype=np.int64)
+    level = np.asarray(level, dtype=np.int64)
+    n = len(unit)
+    domains = np.asarray(domains, dtype=np.int64).reshape(n, -1)
+    categories = np.asarray(categories, dtype=np.int64).reshape(-1)
+    n_domains = domains.shape[1]
+    if len(level) != n or len(categories) != n_domains:
+        raise ValueError(f"unit ({n}), level ({len(level)}), domains ({domains.shape}) and categories "
+                         f"({len(categories)}) do not agree")
+    if n and (unit.min() < 0 or unit.max() >= len(parent)):
+        raise ValueError(f"unit ids must lie in [0, {len(parent)}) (one parent entry per unit)")
+    if np.any((domains < -1) | (domains >= categories[None, :])):
+        raise ValueError("domains must hold category positions in [0, categories) or −1 for 'all'")
+
+    # one integer key per (unit, categories): 'all' is digit 0, category c is digit c + 1
+    sizes = categories + 1
+    mult = np.ones(n_domains, dtype=np.int64)
+    for d in range(n_domains - 2, -1, -1):
+        mult[d] = mult[d + 1] * sizes[d + 1]
+    base = int(np.prod(sizes)) if n_domains else 1
+    digits = domains + 1
+    key = unit * base + (digits @ mult if n_domains else 0)
+    order = np.argsort(key, kind="stable")
+    sorted_keys = key[order]
+    if n > 1 and np.any(sorted_keys[1:] == sorted_keys[:-1]):
+        raise ValueError("two cells share a geography unit and categories")
+
+    def find(keys: np.ndarray) -> np.ndarray:
+        pos = np.minimum(np.searchsorted(sorted_keys, keys), max(n - 1, 0))
+        hit = sorted_keys[pos] == keys if n else np.zeros(len(keys), dtype=bool)
+        return np.where(hit, order[pos], -1)
+
+    totals, parts, tags = [], [], []
+    n_children = np.bincount(parent[parent >= 0], minlength=len(parent))
+
+    # geography: cell (u, d) is a part of (parent(u), d)
+    up = parent[unit]
+    has_parent = np.flatnonzero(up >= 0)
+    total = find(up[has_parent] * base + (digits[has_parent] @ mult if n_domains else 0))
+    found = total >= 0
+    totals.append(total[found])
+    parts.append(has_parent[found])
+    tags.append(np.zeros(int(found.sum()), dtype=np.int64))
+
+    # domains: for each level, each breakdown S and each smallest breakdown S' ⊋ S present there
+    mask = ((domains >= 0) * (1 << np.arange(n_domains))).sum(axis=1) if n_domains else np.zeros(n, np.int64)
+    for lv in np.unique(level):
+        here = level == lv
+        present = sorted(set(mask[here].tolist()))
+        for small in present:
+            larger = [m for m in present if m != small and m & small == small]
+            smallest = [m for m in larger if not any(o != m and o & m == o for o in larger)]
+            for big in smallest:
+                members = np.flatnonzero(here & (mask == big))
+                kept = np.array([(small >> d) & 1 for d in range(n_domains)], dtype=np.int64)
+                projected = unit[members] * base + (digits[members] * kept) @ mult
+                total = find(projected)
+                found = total >= 0
+                totals.append(total[found])
+                parts.append(members[found])
+                tags.append(np.full(int(found.sum()), 1 + big, dtype=np.int64))
+
+    totals = np.concatenate(totals)
+    parts = np.concatenate(parts)
+    tags = np.concatenate(tags)
+    relation_key = totals * (1 + (1 << n_domains)) + tags
+    uniq, row, n_parts = np.unique(relation_key, return_inverse=True, return_counts=True)
+    # completeness: the parts of a relation must be all children / all category combinations
+    first = np.zeros(len(uniq), dtype=np.int64)
+    first[row] = np.arange(len(row))
+    rel_total, rel_tag = totals[first], tags[first]
+    expected = np.empty(len(uniq), dtype=np.int64)
+    geo = rel_tag == 0
+    expected[geo] = n_children[unit[rel_total[geo]]]
+    for i in np.flatnonzero(~geo):
+        big = int(rel_tag[i]) - 1
+        split = [d for d in range(n_domains) if (big >> d) & 1 and domains[rel_total[i], d] < 0]
+        expected[i] = int(np.prod(categories[split])) if split else 1
+    if np.any(expected != n_parts):
+        bad = int(np.flatnonzero(expected != n_parts)[0])
+        raise ValueError(f"relation of total cell {int(rel_total[bad])} is incomplete: {int(n_parts[bad])} "
+                         f"parts present, {int(expected[bad])} expected")
+    rows = np.concatenate([row, np.arange(len(uniq))])
+    cols = np.concatenate([parts, rel_total])
+    vals = np.concatenate([np.ones(len(parts)), -np.ones(len(uniq))])
+    relations = sparse.csr_matrix((vals, (rows, cols)), shape=(len(uniq), n))
+    levels_below = (level.max() if n else 0) - level
+    coarseness = levels_below + (domains < 0).sum(axis=1)
+    cycles = _short_cycles(relations, unit=unit, parent=parent, level=level,
+                           code=digits @ mult if n_domains else np.zeros(n, np.int64), base=base, find=find)
+    return LinkedTable(relations=relations, coarseness=coarseness.astype(np.int64), cycles=cycles)
+
+
+def _short_cycles(relations, *, unit, parent, level, code, base, find, max_size: int = 5):
+    """Moves δ with relations·δ = 0 of the form φ at unit u minus φ at a sibling unit u' (same
+    parent), φ a circuit (minimal dependent set) of the category relations at one unit over the
+    categories with no finer geography below them; at the top level, φ alone. In a two-way table
+    these are the rectangles of four cells; with margins, chains through the 'all' cells. Each
+    is checked against every relation before it is kept."""
+    n = len(unit)
+    out_rows, out_cols, out_vals = [], [], []
+    n_cycles = 0
+    levels = np.unique(level)
+    present = {int(lv): set(code[level == lv].tolist()) for lv in levels}
+    for lv in levels:
+        here = np.flatnonzero(level == lv)
+        units_here = np.unique(unit[here])
+        first = here[unit[here] == units_here[0]]
+        below = present.get(int(lv) + 1, set())
+        vectors = [c for c in sorted(set(code[first].tolist())) if c not in below]  # childless
+        if len(vectors) < 2:
+            continue
+        cols = first[np.isin(code[first], vectors)]
+        cols = cols[np.argsort(code[cols])]
+        # the unit's own category relations: rows living within its cells
+        sub = relations[:, first]
+        inside = np.asarray(abs(sub).sum(axis=1)).ravel() == np.asarray(abs(relations).sum(axis=1)).ravel()
+        rows = np.flatnonzero(inside & (np.asarray(abs(sub).sum(axis=1)).ravel() > 0))
+        if not len(rows):
+            continue
+        D = relations[rows][:, cols].toarray()
+        circuits = _circuits(D, max_size)
+        if not circuits:
+            continue
+        vec_codes = code[cols]
+        if lv == levels.min() and np.all(parent[units_here] < 0):
+            pairs = [(u, -1) for u in units_here]
+        else:
+            pairs = []
+            for p in np.unique(parent[units_here]):
+                sib = units_here[parent[units_here] == p]
+                pairs += [(a, b) for i, a in enumerate(sib) for b in sib[i + 1:]]
+        if not pairs:
+            continue
+        pairs = np.array(pairs, dtype=np.int64)
+        for support, phi in circuits:
+            codes = vec_codes[support]
+            a_cells = find((pairs[:, :1] * base + codes[None, :]).ravel()).reshape(len(pairs), -1)
+            if (pairs[:, 1] >= 0).any():
+                b_cells = find((np.maximum(pairs[:, 1:], 0) * base + codes[None, :]).ravel()).reshape(len(pairs), -1)
+                b_cells[pairs[:, 1] < 0] = -2
+            else:
+                b_cells = np.full_like(a_cells, -2)
+            for alone in (True, False):  # φ at a top unit alone; φ at u minus φ at its sibling
+                ok = (a_cells >= 0).all(axis=1) & ((b_cells == -2).all(axis=1) if alone else (b_cells >= 0).all(axis=1))
+                m = int(ok.sum())
+                if not m:
+                    continue
+                cells = a_cells[ok] if alone else np.hstack([a_cells[ok], b_cells[ok]])
+                vals = phi if alone else np.concatenate([phi, -phi])
+                out_rows.append(np.repeat(np.arange(n_cycles, n_cycles + m), cells.shape[1]))
+                out_cols.append(cells.ravel())
+                out_vals.append(np.tile(vals, m))
+                n_cycles += m
+    if not n_cycles:
+        return sparse.csr_matrix((0, n))
+    C = sparse.csr_matrix((np.concatenate(out_vals), (np.concatenate(out_rows), np.concatenate(out_cols))),
+                          shape=(n_cycles, n))
+    residual = np.asarray(abs(relations @ C.T).max(axis=0).todense()).ravel() if C.shape[0] else np.zeros(0)
+    return C[residual < 1e-9]
+
+
+def _circuits(D: np.ndarray, max_size: int) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Minimal sets of columns of D that are linearly dependent, with their null vector scaled to
+    +1 on the first column (small matrices only: every subset up to max_size is tried)."""
+    k = D.shape[1]
+    found: list[tuple[np.ndarray, np.ndarray]] = []
+    supports: list[set] = []
+    for size in range(2, min(max_size, k) + 1):
+        for subset in combinations(range(k), size):
+            if any(s <= set(subset) for s in supports):
+                continue  # contains a smaller circuit: not minimal
+            sub = D[:, subset]
+            u, sv, vt = np.linalg.svd(sub)
+            rank = int((sv > 1e-9).sum())
+            if rank != size - 1:
+                continue
+            v = vt[-1]
+            if np.any(np.abs(v) < 1e-9):
+                continue
+            v = v / v[0]
+            if np.allclose(v, np.round(v), atol=1e-9):
+                v = np.round(v)  # relations have ±1 entries: circuits are integer, keep them exact
+            supports.append(set(subset))
+            found.append((np.array(subset), v))
+    return found
+
+
+def suppression_cost(table: LinkedTable, *, kind: str, weighted_base: np.ndarray) -> np.ndarray:
+    """Cost of hiding each cell: `cells` counts 2^coarseness (a total weighs as the detail below
+    it, roughly, so detail is hidden before totals and national figures last); `weighted_base`
+    counts the population the cell stands for (small cells first by construction). Preferring
+    detail over totals is common practice (Hundepool et al. 2012, §4.2)."""
+    kind = lookup_member(CostKind, kind, what="cost").value
+    if kind == CostKind.CELLS.value:
+        return np.power(2.0, table.coarseness)
+    base = np.asarray(weighted_base, dtype=np.float64)
+    return np.maximum(base, 1e-9 * max(float(np.nanmax(base, initial=0.0)), 1.0))
+
+
+# --------------------------------------------------------------------------------------------
+# Primary suppression
+
+
+@dataclass(frozen=True)
+class PrimaryCells:
+    """Cells withheld to protect respondents, and which side of each needs protecting: the count
+    with the characteristic where 0 < x < k (or x = 0 under the unanimous rule), the count without
+    it where 0 < n − x < k (or x = n under the unanimous rule). A side held by no one is protected
+    only by the unanimous rule: a cell of 4 persons none of whom has the characteristic is flagged
+    because few lack it, and only `unanimous_below` keeps its count with it from being pinned at 0."""
+
+    few_respondents: np.ndarray
+    unanimous: np.ndarray
+    protect_count: np.ndarray
+    protect_complement: np.ndarray
+
+    @property
+    def cells(self) -> np.ndarray:
+        return self.few_respondents | self.unanimous
+
+
+def primary_cells(sample_size, respondents, *, min_respondents: int, unanimous_below: int = 0) -> PrimaryCells:
+    """Threshold rule on unweighted counts: 0 < x < k or 0 < n − x < k (k = min_respondents).
+    Unanimous rule (off at 0): x = 0 or x = n with 0 < n < unanimous_below, since then every
+    sampled member's answer is known. Cells without sample are not primary: they have no
+    respondent to protect and their (zero) values are known from the reason code."""
+    n = np.asarray(sample_size, dtype=np.int64)
+    x = np.asarray(respondents, dtype=np.int64)
+    if n.shape != x.shape or np.any(x < 0) or np.any(x > n):
+        raise ValueError("respondents must satisfy 0 <= x <= n cell by cell")
+    k, u = int(min_respondents), int(unanimous_below)
+    if k < 0 or u < 0:
+        raise ValueError(f"min_respondents ({k}) and unanimous_below ({u}) must be >= 0")
+    few_with = (x > 0) & (x < k)
+    few_without = (n - x > 0) & (n - x < k)
+    small = (n > 0) & (n < u)
+    none_have = small & (x == 0)
+    all_have = small & (x == n)
+    return PrimaryCells(few_respondents=few_with | few_without, unanimous=none_have | all_have,
+                        protect_count=few_with | none_have,
+                        protect_complement=few_without | all_have)
+
+
+def round_half_up(values, step: float) -> np.ndarray:
+    """Round to a multiple of `step`, halves up (0 = unrounded). |rounded − value| <= step/2."""
+    values = np.asarray(values, dtype=np.float64)
+    if not step:
+        return values.copy()
+    return np.floor(values / step + 0.5) * step
+
+
+# --------------------------------------------------------------------------------------------
+# The reader's knowledge and the audit
+
+
+@dataclass(frozen=True)
+class Quantity:
+    """One additive figure of the table (weighted count, sample size, ...) as the audit sees it.
+
+    value: the true value of every cell (known to the office, not to a reader). published_lower/
+    published_upper: what a reader can infer about a published cell (its rounding interval).
+    hidden_lower/hidden_upper: what a reader knows about a withheld cell without the relations
+    (0 and the grand total, or tighter bounds the reason codes reveal); +inf allowed. required:
+    the width each cell's feasible range needs when it is hidden (0 where nothing is needed)."""
+
+    name: str
+    value: np.ndarray
+    published_lower: np.ndarray
+    published_upper: np.ndarray
+    hidden_lower: np.ndarray
+    hidden_upper: np.ndarray
+    required: np.ndarray
+
+    def __post_init__(self):
+        arrays = [np.asarray(getattr(self, f), dtype=np.float64) for f in
+                  ("value", "published_lower", "published_upper", "hidden_lower", "hidden_upper", "required")]
+        n = len(arrays[0])
+        if any(a.shape != (n,) for a in arrays):
+            raise ValueError(f"quantity {self.name!r}: every array must have one entry per cell ({n})")
+        value, pl, pu, hl, hu, req = arrays
+        slack = 1e-9 * np.maximum(1.0, np.abs(value))
+        if np.any(hl > value + slack) or np.any(hu < value - slack):
+            raise ValueError(f"quantity {self.name!r}: hidden bounds must contain the true value")
+        if np.any(pl > value + slack) or np.any(pu < value - slack):
+            raise ValueError(f"quantity {self.name!r}: published intervals must contain the true value")
+        if np.any(~np.isfinite(req)) or np.any(req < 0):
+            raise ValueError(f"quantity {self.name!r}: required widths must be finite and >= 0")
+        for name, a in zip(("value", "published_lower", "published_upper", "hidden_lower", "hidden_upper",
+                            "required"), arrays):
+            object.__setattr__(self, name, a)
+
+
+@dataclass(frozen=True)
+class QuantityAudit:
+    """What the audit proved for one quantity under one pattern.
+
+    lower/upper: for every hidden cell that needs protection, values it could take that a reader
+    cannot rule out (the feasible range contains [lower, upper]; it is the exact min and max where
+    `exact`); NaN elsewhere. ok: the proven width reaches `required` (True where nothing is
+    required or the cell is published)."""
+
+    name: str
+    lower: np.ndarray
+    upper: np.ndarray
+    exact: np.ndarray
+    required: np.ndarray
+    ok: np.ndarray
+
+    @property
+    def failed(self) -> np.ndarray:
+        return ~self.ok
+
+
+@dataclass(frozen=True)
+class _Cut:
+    """width(z) <= constant + Σ_j gain_j · z_j for every pattern z (1 = hidden), gain >= 0 (may be
+    inf) on the cells `index`: a pattern protects `cell` only if it lifts the bound to `required`."""
+
+    cell: int
+    quantity: str
+    required: float
+    constant: float
+    index: np.ndarray
+    gain: np.ndarray
+
+    def shortfall(self, hidden: np.ndarray) -> float:
+        """What the cells hidden in `hidden` leave to be covered (<= 0: the cut holds)."""
+        return self.required - self.constant - float(self.gain[hidden[self.index]].sum())
+
+
+class _Witnesses:
+    """Sets of values a reader cannot rule out, found so far for one quantity: deviations from
+    the true values that satisfy every relation, kept sparse (one row per point). A point stays a
+    witness under another pattern while each cell it moves stays within that cell's bounds there
+    (hiding more cells only widens bounds, so points survive added complements). Points are split
+    into the independent blocks of the program that found them, so that a change of pattern in one
+    place leaves the points elsewhere standing."""
+
+    def __init__(self, n: int):
+        self.n = n
+        self._pending: list[tuple[np.ndarray, np.ndarray]] = []
+        self._matrix = sparse.csr_matrix((0, n))
+        self._seen: dict[bytes, tuple[int, np.ndarray, np.ndarray]] = {}  # pattern -> rows checked, lo, hi
+
+    def add(self, points: np.ndarray, blocks: np.ndarray | None = None, *, relations=None) -> None:
+        points = np.atleast_2d(points)
+        if relations is not None and len(points):
+            # a point from a linear program satisfies the relations to the solver's tolerance;
+            # keep only those that do to 1e-6 of their own size (never a proof from a bad solve)
+            residual = np.abs(relations @ points.T).max(axis=0) if relations.shape[0] else np.zeros(len(points))
+            points = points[residual <= 1e-6 * np.maximum(1.0, np.abs(points).max(axis=1))]
+        for p in points:
+            nz = np.flatnonzero(p)
+            if not len(nz):
+                continue
+            if blocks is None:
+                self._pending.append((nz, p[nz]))
+                continue
+            labels = blocks[nz]
+            order = np.argsort(labels, kind="stable")
+            cuts = np.flatnonzero(np.diff(labels[order])) + 1
+            for part in np.split(order, cuts):
+                self._pending.append((nz[part], p[nz[part]]))
+
+    def add_rows(self, rows: sparse.csr_matrix) -> None:
+        rows = rows.tocsr()
+        for r in range(rows.shape[0]):
+            lo, hi = rows.indptr[r], rows.indptr[r + 1]
+            if hi > lo:
+                self._pending.append((rows.indices[lo:hi].copy(), rows.data[lo:hi].copy()))
+
+    def matrix(self) -> sparse.csr_matrix:
+        if self._pending:
+            idx = np.concatenate([i for i, _ in self._pending])
+            val = np.concatenate([v for _, v in self._pending])
+            ptr = np.concatenate([[0], np.cumsum([len(i) for i, _ in self._pending])])
+            new = sparse.csr_matrix((val, idx, ptr), shape=(len(self._pending), self.n))
+            self._matrix = sparse.vstack([self._matrix, new], format="csr")
+            self._pending = []
+        return self._matrix
+
+    def take(self, other: "_Witnesses", target: Quantity, hidden: np.ndarray, start: int = 0) -> int:
+        """Points of another quantity of the same table, each scaled to fit this quantity's
+        bounds, are points of this one too (the relations are the same, and t·p satisfies them
+        whenever p does): each point p gives t⁺·p and −t⁻·p with the largest t that stay within
+        the bounds. Takes the other's points from row `start` on; returns where it stopped."""
+        m = other.matrix()[start:]
+        end = start + m.shape[0]
+        if not m.shape[0] or not m.nnz:
+            return end
+        lower, upper = _bounds(target, hidden)
+        low, high = (lower - target.value)[m.indices], (upper - target.value)[m.indices]
+        d = m.data
+        with np.errstate(divide="ignore", invalid="ignore"):
+            up = np.where(d > 0, high / d, low / d)        # room for +t·p, cell by cell
+            down = np.where(d > 0, -low / d, -high / d)    # room for −t·p
+        starts = m.indptr[:-1]
+        filled = np.diff(m.indptr) > 0
+        for room, sign in ((up, 1.0), (down, -1.0)):
+            t = np.full(m.shape[0], 0.0)
+            t[filled] = np.minimum.reduceat(np.nan_to_num(room, nan=0.0, posinf=np.inf), starts[filled])
+            t = np.where(np.isfinite(t), t, 0.0)
+            keep = t > 0
+            if keep.any():
+                scaled = sparse.diags(sign * t[keep]) @ m[keep]
+                for row in range(scaled.shape[0]):
+                    lo_, hi_ = scaled.indptr[row], scaled.indptr[row + 1]
+                    self._pending.append((scaled.indices[lo_:hi_].copy(), scaled.data[lo_:hi_].copy()))
+        return end
+
+    def observed(self, q: Quantity, hidden: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Per cell, the lowest and highest deviation among the points valid under `hidden`
+        (0 included: the true values are always possible)."""
+        m = self.matrix()
+        key = np.packbits(hidden).tobytes()
+        done, lo, hi = self._seen.get(key, (0, np.zeros(self.n), np.zeros(self.n)))
+        if done < m.shape[0]:  # only the points added since this pattern was last asked about
+            new = m[done:]
+            lower, upper = _bounds(q, hidden)
+            tol = 1e-7 * np.maximum(1.0, np.abs(q.value))
+            cols = new.indices
+            bad = ((new.data < lower[cols] - q.value[cols] - tol[cols])
+                   | (new.data > upper[cols] - q.value[cols] + tol[cols]))
+            rows = np.repeat(np.arange(new.shape[0]), np.diff(new.indptr))
+            valid = np.ones(new.shape[0], dtype=bool)
+            valid[rows[bad]] = False
+            keep = new[valid]
+            if keep.shape[0]:
+                lo = np.minimum(lo, keep.min(axis=0).toarray().ravel())
+                hi = np.maximum(hi, keep.max(axis=0).toarray().ravel())
+            self._seen[key] = (m.shape[0], lo, hi)
+        return lo, hi
+
+
+def _bounds(q: Quantity, hidden: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    lower = np.where(hidden, q.hidden_lower, q.published_lower)
+    upper = np.where(hidden, q.hidden_upper, q.published_upper)
+    # the true value is feasible: guard against float dust putting it a hair outside
+    return np.minimum(lower, q.value), np.maximum(upper, q.value)
+
+
+def _free_components(relations: sparse.csr_matrix, free: np.ndarray) -> np.ndarray:
+    """Component label of every free cell (−1 for fixed cells): free cells sharing a relation are
+    linked; fixed cells are constants and link nothing."""
+    labels = np.full(relations.shape[1], -1, dtype=np.int64)
+    idx = np.flatnonzero(free)
+    if not len(idx):
+        return labels
+    m = abs(relations[:, idx])
+    adjacency = (m.T @ m).tocsr()
+    _, comp = connected_components(adjacency, directed=False)
+    labels[idx] = comp
+    return labels
+
+
+def feasible_range(table: LinkedTable, quantity: Quantity, hidden: np.ndarray, cell: int):
+    """Exact min and max of one cell's value given everything published: two linear programs
+    (scipy.optimize.linprog, HiGHS) over the cells linked to it, published figures free within
+    their intervals. Returns (lower, upper, cut, points): the cut the duals give (None when the
+    range is unbounded or the duals give no usable bound) and the two optimal points as
+    deviations from the true values (witnesses for later patterns)."""
+    hidden = np.asarray(hidden, dtype=bool)
+    lower, upper = _bounds(quantity, hidden)
+    lo, hi, cut, _bound, points = _range(table, quantity, hidden, cell, free=upper > lower)
+    return lo, hi, cut, points
+
+
+def _range(table: LinkedTable, q: Quantity, hidden: np.ndarray, cell: int, *, free: np.ndarray,
+           labels: np.ndarray | None = None):
+    """Min and max of `cell` over the cells in its linked component among `free` (the others held
+    at their true values), with the cut from the duals and the cut's value at this pattern (an
+    upper bound on the width under the full reader model, whatever `free` was). With `free` =
+    every cell whose bounds leave room this is the exact range; with `free` = the hidden cells it
+    is the range when published figures are taken at face value (smaller, often much smaller
+    programs: a lower bound on the width, with a valid cut)."""
+    lower, upper = _bounds(q, hidden)
+    none = np.zeros((0, table.n_cells))
+    if not free[cell]:
+        return float(lower[cell]), float(upper[cell]), None, 0.0, none
+    labels = _free_components(table.relations, free) if labels is None else labels  # callers may reuse
+    cols = np.flatnonzero(labels == labels[cell])
+    M = table.relations
+    rows = np.flatnonzero(np.asarray(abs(M[:, cols]).sum(axis=1)).ravel() > 0)
+    if not len(rows):
+        return float(lower[cell]), float(upper[cell]), None, float(upper[cell] - lower[cell]), none
+    sub = M[rows]
+    A = sub[:, cols].tocsr()
+    # in deviations d = y − true value the true point is d = 0, a vertex of the split form
+    # d = d⁺ − d⁻ (both >= 0), so HiGHS starts feasible and needs only the pivots that move the
+    # cell; the right-hand side is the float residual of the true values (≈ 0)
+    a = q.value[cols]
+    b = -(sub @ q.value)
+    lo, hi = np.minimum(lower[cols] - a, 0.0), np.maximum(upper[cols] - a, 0.0)
+    k = len(cols)
+    split = sparse.hstack([A, -A], format="csr")
+    bounds = np.column_stack([np.zeros(2 * k), np.concatenate([hi, -lo])])
+    target = int(np.searchsorted(cols, cell))
+    found, points = [], []
+    for sign in (-1.0, 1.0):  # maximise, then minimise
+        c = np.zeros(2 * k)
+        c[target], c[k + target] = sign, -sign
+        res = linprog(c, A_eq=split, b_eq=b, bounds=bounds, method="highs", options={"presolve": False})
+        if res.status == 3:  # unbounded: the value can grow without limit
+            found.append((np.inf if sign < 0 else -np.inf, None))
+            continue
+        if res.status != 0:
+            raise RuntimeError(f"audit linear program for cell {cell} ({q.name}) failed: {res.message}")
+        d = res.x[:k] - res.x[k:]
+        point = np.zeros(table.n_cells)
+        point[cols] = d
+        points.append(point)
+        found.append((float(q.value[cell] + d[target]), np.asarray(res.eqlin.marginals)))
+    (hi_v, nu_max), (lo_v, nu_min) = found
+    points = np.stack(points) if points else none
+    if not np.isfinite(hi_v) or nu_max is None or nu_min is None:
+        return lo_v, hi_v, None, np.inf, points
+    cut, bound = _width_cut(table, q, cell, rows, nu_max, nu_min, hidden)
+    return lo_v, hi_v, cut, bound, points
+
+
+def _width_cut(table, quantity, cell, rows, nu_max, nu_min, hidden) -> tuple[_Cut | None, float]:
+    """Capacity cut from the two programs' duals (Fischetti & Salazar-González 2000), and its
+    value at the current pattern.
+
+    For any multipliers ν of the relations and every y satisfying them, c·y = (c − Mᵀν)·y = ρ·y,
+    so min c·y >= Σ_j (ρ⁺_j l_j − ρ⁻_j u_j) (weak duality). With c = −e_i (the maximum) and
+    c = e_i (the minimum), width = max − min <= Σ_j (α_j u_j − β_j l_j), α, β >= 0. The bounds
+    depend on the pattern z (1 = hidden): u_j = pu_j + (hu_j − pu_j)·z_j, l_j = pl_j + (hl_j −
+    pl_j)·z_j, so the bound is linear in z and holds for every pattern: a protecting pattern must
+    lift it to the required width. With the duals of the exact programs it equals the width at
+    the current pattern (strong duality). scipy's sign convention for the multipliers is settled
+    by evaluating both signs at the current pattern and keeping the tighter (both are valid)."""
+    M = table.relations
+    q = quantity
+    lower, upper = _bounds(q, hidden)
+
+    def reduced(nu: np.ndarray, c_sign: float) -> np.ndarray:
+        full = np.zeros(M.shape[0])
+        full[rows] = nu
+        rho = -(M.T @ full)
+        rho[cell] += c_sign
+        return rho
+
+    def combine(rho_max, rho_min):
+        alpha = np.maximum(-rho_max, 0) + np.maximum(-rho_min, 0)
+        beta = np.maximum(rho_max, 0) + np.maximum(rho_min, 0)
+        alpha[alpha < 1e-9] = 0.0
+        beta[beta < 1e-9] = 0.0
+        with np.errstate(invalid="ignore"):
+            now = np.where(alpha > 0, alpha * upper, 0.0).sum() - np.where(beta > 0, beta * lower, 0.0).sum()
+        return alpha, beta, now
+
+    best = None
+    for s_max in (1.0, -1.0):
+        for s_min in (1.0, -1.0):
+            alpha, beta, now = combine(reduced(s_max * nu_max, -1.0), reduced(s_min * nu_min, 1.0))
+            if np.isfinite(now) and (best is None or now < best[2]):
+                best = (alpha, beta, now)
+    if best is None:
+        return None, np.inf
+    return _cut_from(q, cell, best[0], best[1]), float(best[2])
+
+
+def _cut_from(q: Quantity, cell: int, alpha: np.ndarray, beta: np.ndarray) -> _Cut:
+    """width(z) <= Σ_j α_j u_j(z) − β_j l_j(z), written as constant + Σ gain·z."""
+    pl, pu = np.minimum(q.published_lower, q.value), np.maximum(q.published_upper, q.value)
+    hl, hu = np.minimum(q.hidden_lower, q.value), np.maximum(q.hidden_upper, q.value)
+    with np.errstate(invalid="ignore"):
+        constant = float(np.where(alpha > 0, alpha * pu, 0.0).sum() - np.where(beta > 0, beta * pl, 0.0).sum())
+        gain = np.where(alpha > 0, alpha * (hu - pu), 0.0) - np.where(beta > 0, beta * (hl - pl), 0.0)
+    gain = np.maximum(np.where(np.isnan(gain), np.inf, gain), 0.0)
+    index = np.flatnonzero(gain > 0)
+    return _Cut(cell=cell, quantity=q.name, required=float(q.required[cell]), constant=constant,
+                index=index, gain=gain[index])
+
+
+def _relation_rows(table: LinkedTable, q: Quantity, fixed: np.ndarray, eligible: np.ndarray):
+    """Cuts that need no linear program, for the mixed-integer program's first solve: the dual
+    multipliers ±1 on a single relation (Fischetti & Salazar-González's capacity constraints, one
+    relation at a time). A protected part can rise no further than the total can rise and its
+    siblings fall: width <= u_T − Σ_siblings l_j − l_i; a protected total moves no further than its
+    parts: width <= Σ_parts (u_j − l_j). With u, l linear in the pattern (see `_width_cut`) each is
+    a row Σ gain_j z_j >= rhs over the eligible cells; per relation only the largest requirement
+    among its protected parts matters (its row implies the others'). Returns (rows × cells sparse
+    matrix of gains clipped at the row's rhs, rhs)."""
+    M = table.relations.tocsr()
+    pl, pu = np.minimum(q.published_lower, q.value), np.maximum(q.published_upper, q.value)
+    hl, hu = np.minimum(q.hidden_lower, q.value), np.maximum(q.hidden_upper, q.value)
+    need = np.where(fixed, q.required, 0.0)
+    parts = M.multiply(M > 0).tocsr()
+    totals = (-M).multiply(M < 0).tocsr()
+    total_of = np.asarray(totals.argmax(axis=1)).ravel()
+    part_gain = pl - hl                         # a part's lower bound drops when hidden
+    total_gain = hu - pu                        # the total's upper bound rises when hidden
+    out_rows, out_rhs = [], []
+    # protected parts: rhs = P − u_T(fixed) + Σ_parts l_j(fixed)
+    p_max = np.asarray(parts.multiply(need).max(axis=1).todense()).ravel()
+    fixed_parts_gain = parts @ (part_gain * fixed)
+    T = total_of
+    with np.errstate(invalid="ignore"):
+        rhs = p_max - np.where(fixed[T], hu[T], pu[T]) + (parts @ pl) - fixed_parts_gain
+    use = (p_max > 0) & np.isfinite(rhs) & (rhs > 0)
+    for r in np.flatnonzero(use):
+        members = parts.indices[parts.indptr[r]:parts.indptr[r + 1]]
+        cand = members[eligible[members]]
+        cols = np.concatenate([cand, [T[r]] if eligible[T[r]] else []]).astype(np.int64)
+        gains = np.concatenate([part_gain[cand], [total_gain[T[r]]] if eligible[T[r]] else []])
+        out_rows.append((cols, np.minimum(gains, rhs[r])))
+        out_rhs.append(rhs[r])
+    # protected totals: rhs = P − Σ_parts (u_j − l_j)(fixed)
+    width_parts = parts @ np.where(fixed, hu - hl, pu - pl)
+    with np.errstate(invalid="ignore"):
+        rhs_t = need[T] - width_parts
+    use = (need[T] > 0) & np.isfinite(rhs_t) & (rhs_t > 0)
+    for r in np.flatnonzero(use):
+        members = parts.indices[parts.indptr[r]:parts.indptr[r + 1]]
+        cand = members[eligible[members]]
+        out_rows.append((cand, np.minimum((hu - pu + pl - hl)[cand], rhs_t[r])))
+        out_rhs.append(rhs_t[r])
+    return out_rows, out_rhs
+
+
+def _witness_round(M_h: sparse.csr_matrix, low: np.ndarray, high: np.ndarray, targets: np.ndarray,
+                   required: np.ndarray, up: np.ndarray, down: np.ndarray, copies: int) -> np.ndarray | None:
+    """One linear program over `copies` copies of the hidden cells' deviations d (M_h d = 0,
+    low <= d <= high; published figures at their true values): maximise Σ_t min(d[up_t] − d[down_t],
+    required_t)/required_t over the targets t. Returns the copies' deviations (copies × hidden)."""
+    h = M_h.shape[1]
+    m = len(targets)
+    eq = sparse.hstack([sparse.kron(sparse.identity(copies, format="csr"), M_h, format="csr"),
+                        sparse.csr_matrix((copies * M_h.shape[0], m))], format="csr")
+    r = np.arange(m)
+    ub_rows = sparse.csr_matrix(
+        (np.concatenate([np.ones(m), -np.ones(m), np.ones(m)]),
+         (np.concatenate([r, r, r]), np.concatenate([copies * h + r, up * h + targets, down * h + targets]))),
+        shape=(m, copies * h + m))
+    c = np.concatenate([np.zeros(copies * h), -1.0 / required])
+    lo = np.concatenate([np.tile(low, copies), np.zeros(m)])
+    hi = np.concatenate([np.tile(high, copies), required])
+    res = linprog(c, A_ub=ub_rows, b_ub=np.zeros(m), A_eq=eq, b_eq=np.zeros(eq.shape[0]),
+                  bounds=np.column_stack([lo, hi]), method="highs", options={"presolve": False})
+    if res.status != 0:
+        return None
+    return res.x[: copies * h].reshape(copies, h)
+
+
+def _find_witnesses(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets: np.ndarray,
+                    witnesses: _Witnesses, proven: np.ndarray, rng: np.random.Generator, *,
+                    radius: int | None = None, stop_share: float = 0.02) -> None:
+    """Witness rounds for the targets not yet proven; adds the points found to `witnesses` and
+    updates `proven` in place. The programs span the targets' whole linked components, or with
+    `radius` only the hidden cells within that many relations of them (the rest held at their
+    true values: smaller programs, still valid points). Rounds stop when one proves less than
+    `stop_share` of the cells it was given: the rest go to the next step."""
+    M = table.relations
+    idx = np.flatnonzero(hidden)
+    lower, upper = _bounds(q, hidden)
+    low_all, high_all = lower - q.value, upper - q.value
+    labels = _free_components(M, hidden)
+    adjacency = None
+    if radius is not None:
+        m = abs(M[:, idx])
+        adjacency = (m.T @ m).tocsr()
+    previous = None
+    for _ in range(_WITNESS_ROUNDS):
+        todo = targets[~proven[targets]]
+        if not len(todo):
+            return
+        if adjacency is None:
+            cols = idx[np.isin(labels[idx], np.unique(labels[todo]))]
+        else:
+            near = np.zeros(len(idx), dtype=bool)
+            near[np.searchsorted(idx, todo)] = True
+            for _step in range(radius):
+                near |= np.asarray(adjacency @ near.astype(np.float64)).ravel() > 0
+            cols = idx[near]
+            # and the published figures beside them, free within their rounding intervals: a
+            # few cells are protected by that slack alone
+            touched = np.asarray(abs(M[np.flatnonzero(np.asarray(abs(M[:, cols]).sum(axis=1)).ravel() > 0)])
+                                 .sum(axis=0)).ravel() > 0
+            cols = np.flatnonzero((np.isin(np.arange(table.n_cells), cols)) | (touched & ~hidden & (upper > lower)))
+        rows = np.flatnonzero(np.asarray(abs(M[:, cols]).sum(axis=1)).ravel() > 0)
+        M_h = M[rows][:, cols].tocsr()
+        local = np.searchsorted(cols, todo)
+        k = _WITNESS_COPIES
+        if previous is None:
+            up = rng.integers(0, k, len(todo))
+            down = (up + rng.integers(1, k, len(todo))) % k
+        else:  # keep the copies each cell came out highest and lowest in
+            vals = previous[:, todo]
+            up, down = vals.argmax(axis=0), vals.argmin(axis=0)
+            flat = up == down
+            up = np.where(flat, rng.integers(0, k, len(todo)), up)
+            down = np.where(flat | (down == up), (up + rng.integers(1, k, len(todo))) % k, down)
+        D = _witness_round(M_h, np.minimum(low_all[cols], 0), np.maximum(high_all[cols], 0), local,
+                           q.required[todo], up, down, k)
+        if D is None:
+            return
+        previous = np.zeros((k, table.n_cells))
+        previous[:, cols] = np.where(np.abs(D) > 1e-9 * np.maximum(1.0, np.abs(q.value[cols])), D, 0.0)
+        blocks = np.full(table.n_cells, -1, dtype=np.int64)
+        link = abs(M_h)
+        blocks[cols] = connected_components((link.T @ link).tocsr(), directed=False)[1]
+        witnesses.add(previous, blocks, relations=M)
+        before = int(proven.sum())
+        _prove(q, witnesses, hidden, targets, proven)
+        if int(proven.sum()) - before < max(_MIN_GAIN, stop_share * len(todo)):
+            return
+
+
+def _cycle_proofs(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets: np.ndarray,
+                  witnesses: _Witnesses) -> None:
+    """Witnesses from the table's short cycles whose cells are all hidden: moving along a cycle
+    by t keeps every relation, so with the largest t the bounds allow in each direction it gives
+    two points; for each target the best point up and the best point down are kept. No linear
+    program: this proves most cells at the finest level at almost no cost."""
+    C = table.cycles
+    if C is None or not C.shape[0] or not len(targets):
+        return
+    usable = np.asarray(abs(C) @ (~hidden).astype(np.float64)).ravel() == 0
+    if not usable.any():
+        return
+    C = C[usable].tocsr()
+    lower, upper = _bounds(q, hidden)
+    up_room, down_room = upper - q.value, q.value - lower
+    d, cols = C.data, C.indices
+    with np.errstate(divide="ignore", invalid="ignore"):
+        plus = np.where(d > 0, up_room[cols] / d, down_room[cols] / -d)     # room for +t·δ
+        minus = np.where(d > 0, down_room[cols] / d, up_room[cols] / -d)    # room for −t·δ
+    starts = C.indptr[:-1]
+    t_plus = np.minimum.reduceat(plus, starts)
+    t_minus = np.minimum.reduceat(minus, starts)
+    row_of = np.repeat(np.arange(C.shape[0]), np.diff(C.indptr))
+    is_target = np.zeros(table.n_cells, dtype=bool)
+    is_target[targets] = True
+    e = np.flatnonzero(is_target[cols])
+    if not len(e):
+        return
+    r, c, v = row_of[e], cols[e], d[e]
+    # how far each cycle takes the target up, and down, and with which signed step
+    rise = np.where(v > 0, t_plus[r] * v, t_minus[r] * -v)
+    fall = np.where(v > 0, t_minus[r] * v, t_plus[r] * -v)
+    step_up = np.where(v > 0, t_plus[r], -t_minus[r])
+    step_down = np.where(v > 0, -t_minus[r], t_plus[r])
+    picks = []
+    for amount, step in ((rise, step_up), (fall, step_down)):
+        order = np.lexsort((amount, c))
+        last = np.flatnonzero(np.r_[c[order][1:] != c[order][:-1], True])
+        best = order[last]
+        best = best[np.isfinite(amount[best]) & (amount[best] > 0)]
+        if len(best):
+            picks.append(sparse.diags(step[best]) @ C[r[best]])
+    for rows in picks:
+        witnesses.add_rows(rows)
+
+
+def _reaches(width, required) -> np.ndarray:
+    return width >= required * (1 - _WIDTH_TOLERANCE) - _WIDTH_TOLERANCE
+
+
+def _prove(q: Quantity, witnesses: _Witnesses, hidden: np.ndarray, targets: np.ndarray, proven: np.ndarray) -> None:
+    lo, hi = witnesses.observed(q, hidden)
+    proven[targets] = _reaches((hi - lo)[targets], q.required[targets])
+
+
+def audit_quantity(table: LinkedTable, quantity: Quantity, hidden, *, witnesses: _Witnesses | None = None,
+                   seed: int = 0) -> tuple[QuantityAudit, list[_Cut]]:
+    """Prove, for every hidden cell with a required width, that its feasible range is at least that
+    wide; the cells that cannot be proven get their exact range and, when short, a cut."""
+    hidden = np.asarray(hidden, dtype=bool)
+    q = quantity
+    n = table.n_cells
+    if len(q.value) != n or hidden.shape != (n,):
+        raise ValueError(f"quantity {q.name!r} and the hidden mask need one entry per cell ({n})")
+    witnesses = witnesses if witnesses is not None else _Witnesses(n)
+    targets = np.flatnonzero(hidden & (q.required > 0))
+    proven = np.zeros(n, dtype=bool)
+    lower = np.full(n, np.nan)
+    upper = np.full(n, np.nan)
+    exact = np.zeros(n, dtype=bool)
+    cuts: list[_Cut] = []
+    if len(targets):
+        # a hidden cell in no relation can take any value within its own bounds
+        lonely = targets[np.asarray(abs(table.relations[:, targets]).sum(axis=0)).ravel() == 0]
+        linked = np.setdiff1d(targets, lonely)
+        _prove(q, witnesses, hidden, linked, proven)
+        if (~proven[linked]).any():
+            _cycle_proofs(table, q, hidden, linked[~proven[linked]], witnesses)
+            _prove(q, witnesses, hidden, linked, proven)
+        rng = np.random.default_rng(seed)
+        if (~proven[linked]).sum() > _FEW:  # many cells: their whole linked components first
+            _find_witnesses(table, q, hidden, linked, witnesses, proven, rng)
+        if (~proven[linked]).any():  # then neighbourhoods, with the published slack beside them
+            _find_witnesses(table, q, hidden, linked, witnesses, proven, rng, radius=_NEIGHBOURHOOD)
+        b_lo, b_hi = _bounds(q, hidden)
+        lower[lonely], upper[lonely], exact[lonely] = b_lo[lonely], b_hi[lonely], True
+        b_free = b_hi > b_lo
+        face_value = exact_model = None  # component labels, computed once for all the cells left
+        for i in linked[~proven[linked]]:
+            if face_value is None:
+                face_value = _free_components(table.relations, hidden & b_free)
+            # published figures at face value first: a small program over the hidden cells linked
+            # to i; its points are witnesses, and its duals bound the full reader's width
+            lo_i, hi_i, cut, bound, points = _range(table, q, hidden, int(i), free=hidden & b_free,
+                                                    labels=face_value)
+            witnesses.add(points, relations=table.relations)
+            if _reaches(hi_i - lo_i, q.required[i]):
+                proven[i] = True
+                continue
+            if cut is not None and not _reaches(bound, q.required[i]):
+                lower[i], upper[i] = lo_i, hi_i  # short even with the rounding slack: a cut
+                cuts.append(cut)
+                continue
+            if exact_model is None:
+                exact_model = _free_components(table.relations, b_free)
+            lo_i, hi_i, cut, bound, points = _range(table, q, hidden, int(i), free=b_free, labels=exact_model)
+            witnesses.add(points, relations=table.relations)
+            lower[i], upper[i], exact[i] = lo_i, hi_i, True
+            if not _reaches(hi_i - lo_i, q.required[i]):
+                usable = cut is not None and bound <= (hi_i - lo_i) + 1e-6 * max(1.0, hi_i - lo_i) + 1e-6
+                cuts.append(cut if usable else _plain_cut(table, hidden, int(i), q))
+        lo, hi = witnesses.observed(q, hidden)
+        inner = linked[~exact[linked] & np.isnan(lower[linked])]
+        lower[inner] = q.value[inner] + lo[inner]
+        upper[inner] = q.value[inner] + hi[inner]
+    ok = np.ones(n, dtype=bool)
+    ok[targets] = _reaches((upper - lower)[targets], q.required[targets])
+    return QuantityAudit(name=q.name, lower=lower, upper=upper, exact=exact, required=q.required, ok=ok), cuts
+
+
+def _plain_cut(table: LinkedTable, hidden: np.ndarray, cell: int, q: Quantity) -> _Cut:
+    """When the duals give no usable bound: some cell not hidden now, in a relation with the
+    cell's linked hidden cells, must be hidden (hiding more only widens ranges, so a subset of a
+    failing pattern fails too)."""
+    M = table.relations
+    labels = _free_components(M, hidden)
+    comp = np.flatnonzero(labels == labels[cell]) if labels[cell] >= 0 else np.array([cell])
+    rows = np.flatnonzero(np.asarray(abs(M[:, comp]).sum(axis=1)).ravel() > 0)
+    near = np.asarray(abs(M[rows]).sum(axis=0)).ravel() > 0
+    index = np.flatnonzero(near & ~hidden)
+    return _Cut(cell=cell, quantity=q.name, required=float(q.required[cell]), constant=0.0, index=index,
+                gain=np.full(len(index), np.inf))
+
+
+# --------------------------------------------------------------------------------------------
+# Complementary suppression
+
+
+@dataclass(frozen=True)
+class ProtectionResult:
+    """The pattern chosen for one table and what the audit proved about it.
+
+    hidden: every cell hidden (withheld + primary + complementary); complementary: the cells this
+    step added; cost: their total cost; method: 'milp' or 'greedy'; status: how the optimisation
+    ended, in words; rounds: solves of the mixed-integer program (or greedy passes);
+    audits: one per quantity; seconds: wall time."""
+
+    hidden: np.ndarray
+    complementary: np.ndarray
+    cost: float
+    method: str
+    status: str
+    rounds: int
+    audits: tuple[QuantityAudit, ...]
+    seconds: float
+
+    @property
+    def ok(self) -> bool:
+        return all(bool(a.ok.all()) for a in self.audits)
+
+    @property
+    def failed(self) -> np.ndarray:
+        out = np.zeros(len(self.hidden), dtype=bool)
+        for a in self.audits:
+            out |= a.failed
+        return out
+
+
+def protect_table(table: LinkedTable, *, quantities: list[Quantity], withheld, eligible, cost,
+                  time_limit: float = 60.0, method: str = "milp") -> ProtectionResult:
+    """Choose complementary cells so that every cell with a required width is protected, and
+    audit the pattern.
+
+    quantities: the figures to protect (their `required` arrays mark the primary cells, which are
+    hidden whatever happens); withheld: cells hidden for other reasons (no protection needed, free
+    as complements); eligible: cells that may be chosen (published ones whose value a reader does
+    not already know); cost: cost of hiding each cell. method 'milp' optimises (falling back to the
+    greedy pattern when `time_limit` seconds run out or the solver fails); 'greedy' builds the
+    greedy pattern only."""
+    started = time.perf_counter()
+    n = table.n_cells
+    withheld = np.asarray(withheld, dtype=bool)
+    eligible = np.asarray(eligible, dtype=bool)
+    cost = np.asarray(cost, dtype=np.float64)
+    if withheld.shape != (n,) or eligible.shape != (n,) or cost.shape != (n,):
+        raise ValueError(f"withheld, eligible and cost need one entry per cell ({n})")
+    if method not in ("milp", "greedy"):
+        raise ValueError(f"method ({method!r}) must be 'milp' or 'greedy'")
+    primary = np.zeros(n, dtype=bool)
+    for q in quantities:
+        primary |= q.required > 0
+    fixed = withheld | primary
+    eligible = eligible & ~fixed
+    witnesses = {q.name: _Witnesses(n) for q in quantities}
+
+    def finish(hidden, method_used, status, rounds, audits):
+        comp = hidden & ~fixed
+        return ProtectionResult(hidden=hidden, complementary=comp, cost=float(cost[comp].sum()),
+                                method=method_used, status=status, rounds=rounds, audits=tuple(audits),
+                                seconds=time.perf_counter() - started)
+
+    if not primary.any():
+        return finish(fixed.copy(), method, "nothing to protect", 0, [])
+
+    status = ""
+    if method == "milp":
+        deadline = started + time_limit
+        cuts: list[_Cut] = []
+        capacity = []  # single-relation capacity rows, known before any audit
+        for q in quantities:
+            rows, rhs = _relation_rows(table, q, fixed, eligible)
+            capacity += [(cols, gains, b) for (cols, gains), b in zip(rows, rhs)]
+        # witnesses among the cells hidden whatever is chosen stay valid in every round; each
+        # quantity first takes what the others found, scaled, and searches only for the rest
+        for k, q in enumerate(quantities):
+            for other in quantities[:k]:
+                witnesses[q.name].take(witnesses[other.name], q, fixed)
+            targets = np.flatnonzero(fixed & (q.required > 0))
+            proven = np.zeros(n, dtype=bool)
+            _cycle_proofs(table, q, fixed, targets, witnesses[q.name])
+            _prove(q, witnesses[q.name], fixed, targets, proven)
+            rng = np.random.default_rng(0)
+            _find_witnesses(table, q, fixed, targets, witnesses[q.name], proven, rng, stop_share=0.1)
+            if (~proven[targets]).any():
+                _find_witnesses(table, q, fixed, targets, witnesses[q.name], proven, rng, radius=_NEIGHBOURHOOD)
+        kept = np.zeros(n, dtype=bool)
+        for round_no in range(1, _MAX_CUT_ROUNDS + 1):
+            remaining = deadline - time.perf_counter()
+            if remaining <= 0:
+                status = "time limit reached; greedy fall-back"
+                break
+            hidden, solved = _solve_milp(table, primary | kept, fixed | kept, eligible & ~kept, cost, capacity,
+                                         cuts, remaining)
+            if hidden is None:
+                status = f"{solved}; greedy fall-back"
+                break
+            audits, new_cuts = _audit_all(table, quantities, hidden, witnesses)
+            if not new_cuts:
+                return finish(hidden, "milp", solved if not kept.any() else
+                              f"{solved} additions to the choice of round {_GLOBAL_ROUNDS}", round_no, audits)
+            cuts += new_cuts
+            if round_no >= _GLOBAL_ROUNDS:
+                # re-solving everything again and again can trade one failure for another; from here
+                # the cells chosen so far stay hidden and only additions are optimised, so the
+                # rounds converge and earlier proofs stay valid
+                kept = hidden & ~fixed
+        else:
+            status = f"still failing after {_MAX_CUT_ROUNDS} rounds of cuts; greedy fall-back"
+    hidden, rounds, audits = _greedy(table, quantities, primary, fixed, eligible, cost, witnesses)
+    return finish(hidden, "greedy", status or "greedy", rounds, audits)
+
+
+def _audit_all(table, quantities, hidden, witnesses) -> tuple[list[QuantityAudit], list[_Cut]]:
+    audits, cuts = [], []
+    for q in quantities:
+        audit, c = audit_quantity(table, q, hidden, witnesses=witnesses[q.name])
+        audits.append(audit)
+        cuts += c
+    return audits, cuts
+
+
+def _relation_counts(M: sparse.csr_matrix, mask: np.ndarray) -> np.ndarray:
+    return np.asarray(abs(M) @ mask.astype(np.float64)).ravel()
+
+
+def _solve_milp(table, primary, fixed, eligible, cost, capacity, cuts, time_limit):
+    """The mixed-integer program over the eligible cells; returns (hidden mask, status) or
+    (None, reason). `primary`: hidden cells that need a partner in each relation; `fixed`: hidden
+    whatever is chosen."""
+    M = abs(table.relations).tocsr()
+    free = np.flatnonzero(eligible)
+    pos = np.full(table.n_cells, -1)
+    pos[free] = np.arange(len(free))
+    n_fixed = _relation_counts(M, fixed)
+    rows, cols, vals, lbs = [], [], [], []
+    k = 0
+    # (a) no relation with exactly one hidden cell that needs protecting or was chosen
+    coo = M.tocoo()
+    rel, cell = coo.row, coo.col
+    choosable = eligible[cell]
+    holds_primary = np.asarray(M @ (fixed & primary).astype(np.float64)).ravel() > 0
+    # a lone fixed cell that needs protecting: some eligible cell of its relation must be hidden
+    # (a lone unreliable cell is no secret; with nothing to choose from, the audit decides)
+    lone = (n_fixed == 1) & holds_primary
+    pick = lone[rel] & choosable
+    if pick.any():
+        row_of = np.full(M.shape[0], -1)
+        used = np.unique(rel[pick])
+        row_of[used] = np.arange(k, k + len(used))
+        rows.append(row_of[rel[pick]])
+        cols.append(pos[cell[pick]])
+        vals.append(np.ones(int(pick.sum())))
+        lbs += [1.0] * len(used)
+        k += len(used)
+    # no fixed cell: a chosen cell needs another chosen one beside it, Σ_{l != j} z_l − z_j >= 0
+    pick = (n_fixed[rel] == 0) & choosable
+    r_sel, c_sel = rel[pick], cell[pick]
+    order = np.argsort(r_sel, kind="stable")
+    r_sel, c_sel = r_sel[order], c_sel[order]
+    starts = np.flatnonzero(np.r_[True, r_sel[1:] != r_sel[:-1]])
+    sizes = np.diff(np.r_[starts, len(r_sel)])
+    for size in np.unique(sizes):
+        if size < 1:
+            continue
+        groups = c_sel[starts[sizes == size][:, None] + np.arange(size)[None, :]]  # (G, size)
+        G = len(groups)
+        coef = np.ones((size, size)) - 2 * np.eye(size)                         # row j: −1 at j
+        rows.append(np.repeat(np.arange(k, k + G * size), size))
+        cols.append(pos[np.repeat(groups, size, axis=0).ravel()])
+        vals.append(np.tile(coef.ravel(), G))
+        lbs += [0.0] * (G * size)
+        k += G * size
+    # (b) capacity: single relations first, then the cuts the audit found
+    for cells, gains, rhs in capacity:
+        rhs = rhs - float(gains[fixed[cells]].sum())  # cells kept hidden from earlier rounds
+        if rhs <= 0:
+            continue
+        keep = (gains > 1e-12) & eligible[cells]
+        gains = np.minimum(gains, rhs)
+        if not keep.any():
+            return None, "a protected cell has too little room in one of its relations, whatever is hidden"
+        rows.append(np.full(int(keep.sum()), k))
+        cols.append(pos[cells[keep]])
+        vals.append(gains[keep])
+        lbs.append(rhs)
+        k += 1
+    for cut in cuts:
+        rhs = cut.shortfall(fixed)
+        if rhs <= 0:
+            continue
+        choosable = eligible[cut.index]
+        g = np.minimum(cut.gain[choosable], rhs)
+        use = g > 1e-12
+        if not use.any():
+            return None, f"cell {cut.cell} ({cut.quantity}) cannot be protected by hiding more cells"
+        rows.append(np.full(int(use.sum()), k))
+        cols.append(pos[cut.index[choosable][use]])
+        vals.append(g[use])
+        lbs.append(rhs)
+        k += 1
+    constraints = []
+    if k:
+        A = sparse.csr_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))),
+                              shape=(k, len(free)))
+        constraints = [LinearConstraint(A, np.array(lbs), np.inf)]
+    if not len(free):
+        return fixed.copy(), "optimal"
+    res = milp(cost[free], integrality=np.ones(len(free)), bounds=Bounds(0, 1), constraints=constraints,
+               options={"time_limit": max(float(time_limit), 0.01), "mip_rel_gap": 1e-6})
+    if res.status == 0:
+        hidden = fixed.copy()
+        hidden[free[np.round(res.x) > 0.5]] = True
+        return hidden, "optimal"
+    if res.status == 1:
+        return None, "time limit reached"
+    if res.status == 2:
+        return None, "no pattern satisfies the cuts"
+    return None, f"solver stopped: {res.message}"
+
+
+def _greedy(table, quantities, primary, fixed, eligible, cost, witnesses):
+    """Greedy pattern (the fall-back). Pass 1, repeated: for every relation whose only hidden cell
+    needs protecting or was chosen, hide its cheapest eligible cell. Pass 2: audit; for each cell
+    still short, hide the eligible cell with the best gain per cost in its cut. Repeat until the
+    audit passes or nothing more can be hidden."""
+    M = abs(table.relations).tocsr()
+    hidden = fixed.copy()
+    chosen = np.zeros_like(hidden)
+    rounds = 0
+    audits: list[QuantityAudit] = []
+    while True:
+        rounds += 1
+        while True:
+            count = _relation_counts(M, hidden)
+            added = False
+            for r in np.flatnonzero(count == 1):
+                members = M.indices[M.indptr[r]:M.indptr[r + 1]]
+                lone = members[hidden[members]]
+                if not (primary[lone].any() or chosen[lone].any()):
+                    continue
+                options = members[eligible[members] & ~hidden[members]]
+                if len(options):
+                    j = options[np.argmin(cost[options])]
+                    hidden[j] = chosen[j] = True
+                    added = True
+            if not added:
+                break
+        audits, cuts = _audit_all(table, quantities, hidden, witnesses)
+        if not cuts:
+            return hidden, rounds, audits
+        progress = False
+        for cut in cuts:
+            rhs = cut.shortfall(hidden)
+            if rhs <= 0:
+                continue  # an earlier addition in this pass may already have fixed it
+            pick = eligible[cut.index] & ~hidden[cut.index]
+            if not pick.any():
+                continue
+            options = cut.index[pick]
+            score = np.minimum(cut.gain[pick], rhs) / cost[options]
+            j = options[np.argmax(score)]
+            hidden[j] = chosen[j] = True
+            progress = True
+        if not progress:
+            return hidden, rounds, audits

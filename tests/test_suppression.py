@@ -1,0 +1,363 @@
+"""Complementary suppression and its audit (pipeline.methods.suppression), on tables small enough
+to work by hand.
+
+Where the expected answers come from:
+* relations: written out cell by cell from the definition (parent = sum of children; 'all' = sum
+  of categories);
+* patterns: the cheapest hiding that protects, argued in each test's comment (a two-way table
+  needs a rectangle; a hierarchy needs a sibling with room, nothing above);
+* ranges: solved by hand from the relations (each comment gives the arithmetic);
+* the dual cuts: checked against exact ranges recomputed for every other pattern (weak duality
+  says the cut can never be below them; strong duality says it equals the range now);
+* milp versus greedy: both run on random tables, each pattern checked by exact ranges.
+"""
+
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+import pytest
+
+from pipeline.methods import suppression as S
+
+
+# --------------------------------------------------------------------------------------------
+# Small tables
+
+
+def two_way(values: np.ndarray):
+    """One unit, two domains (rows r, columns c) with both margins and the grand total."""
+    R, C = values.shape
+    keys, vals = [], []
+    for r in [-1, *range(R)]:
+        for c in [-1, *range(C)]:
+            keys.append((r, c))
+            vals.append(values.sum() if r < 0 and c < 0 else values[:, c].sum() if r < 0
+                        else values[r].sum() if c < 0 else values[r, c])
+    keys = np.array(keys)
+    table = S.linked_table(unit=np.zeros(len(keys), int), parent=[-1], level=np.zeros(len(keys), int),
+                           domains=keys, categories=[R, C])
+    return table, [tuple(k) for k in keys], np.array(vals, dtype=float)
+
+
+# nation (unit 0) → regions R1 (1), R2 (2) → areas A1, A2, A3 (3, 4, 5) in R1, A4, A5, A6 (6, 7, 8) in R2
+PARENT = [-1, 0, 0, 1, 1, 1, 2, 2, 2]
+LEVEL_OF_UNIT = [0, 1, 1, 2, 2, 2, 2, 2, 2]
+
+
+def hierarchy(area_values):
+    """The geography alone (no domains): one cell per unit, values summed up the tree."""
+    area_values = np.asarray(area_values, dtype=float)
+    values = np.zeros(9)
+    values[3:] = area_values
+    values[1], values[2] = area_values[:3].sum(), area_values[3:].sum()
+    values[0] = area_values.sum()
+    table = S.linked_table(unit=np.arange(9), parent=PARENT, level=LEVEL_OF_UNIT,
+                           domains=np.zeros((9, 0), int), categories=[])
+    return table, values
+
+
+def exact_quantity(values, required, *, step: float = 0.0, name: str = "count") -> S.Quantity:
+    """Published counts known to ± step/2 (0: exactly); a hidden count anywhere in [0, grand total
+    as published]."""
+    values = np.asarray(values, dtype=float)
+    rounded = S.round_half_up(values, step)
+    top = float(rounded.max() + step / 2)  # the grand total is the largest cell in these tables
+    return S.Quantity(name=name, value=values, published_lower=np.maximum(rounded - step / 2, 0),
+                      published_upper=rounded + step / 2, hidden_lower=np.zeros(len(values)),
+                      hidden_upper=np.full(len(values), top), required=np.asarray(required, dtype=float))
+
+
+def relation_sets(table) -> set:
+    """Each relation as (total cell, frozenset of part cells), read off the sparse matrix."""
+    out = set()
+    M = table.relations.tocsr()
+    for r in range(M.shape[0]):
+        cols = M.indices[M.indptr[r]:M.indptr[r + 1]]
+        vals = M.data[M.indptr[r]:M.indptr[r + 1]]
+        assert sorted(vals.tolist()).count(-1.0) == 1
+        out.add((int(cols[vals < 0][0]), frozenset(cols[vals > 0].tolist())))
+    return out
+
+
+# --------------------------------------------------------------------------------------------
+# The linked table
+
+
+def test_two_way_table_relations_are_the_margins():
+    table, keys, values = two_way(np.arange(1, 7, dtype=float).reshape(2, 3))
+    at = {k: i for i, k in enumerate(keys)}
+    expected = {
+        (at[(-1, -1)], frozenset({at[(0, -1)], at[(1, -1)]})),                  # total = Σ row margins
+        (at[(-1, -1)], frozenset({at[(-1, c)] for c in range(3)})),             # total = Σ column margins
+        *((at[(r, -1)], frozenset({at[(r, c)] for c in range(3)})) for r in range(2)),
+        *((at[(-1, c)], frozenset({at[(r, c)] for r in range(2)})) for c in range(3)),
+    }
+    assert relation_sets(table) == expected
+    assert np.allclose(table.relations @ values, 0)  # every relation holds for additive values
+    # coarseness: interior 0, margins 1, grand total 2 ('all' domains, one level)
+    assert table.coarseness[at[(0, 0)]] == 0 and table.coarseness[at[(0, -1)]] == 1
+    assert table.coarseness[at[(-1, -1)]] == 2
+
+
+def test_geography_and_a_breakdown_that_stops_at_regions():
+    # tables [] down to areas and [sex] down to regions: 9 cells + 3 units × 2 sexes
+    units = list(range(9)) + [0, 0, 1, 1, 2, 2]
+    sex = [-1] * 9 + [0, 1, 0, 1, 0, 1]
+    table = S.linked_table(unit=units, parent=PARENT, level=[LEVEL_OF_UNIT[u] for u in units],
+                           domains=np.array(sex)[:, None], categories=[2])
+    cell = {(u, s): i for i, (u, s) in enumerate(zip(units, sex))}
+    expected = {
+        (cell[(0, -1)], frozenset({cell[(1, -1)], cell[(2, -1)]})),             # nation = R1 + R2
+        (cell[(1, -1)], frozenset({cell[(3, -1)], cell[(4, -1)], cell[(5, -1)]})),
+        (cell[(2, -1)], frozenset({cell[(6, -1)], cell[(7, -1)], cell[(8, -1)]})),
+        *((cell[(0, s)], frozenset({cell[(1, s)], cell[(2, s)]})) for s in (0, 1)),  # nation × sex
+        *((cell[(u, -1)], frozenset({cell[(u, 0)], cell[(u, 1)]})) for u in (0, 1, 2)),  # all = M + F
+    }
+    # no relation for areas by sex: the breakdown does not go down there
+    assert relation_sets(table) == expected
+
+
+def test_an_incomplete_relation_is_refused():
+    table, keys, _ = two_way(np.ones((2, 2)))
+    keep = [i for i, k in enumerate(keys) if k != (1, 1)]  # one interior cell missing
+    with pytest.raises(ValueError, match="incomplete"):
+        S.linked_table(unit=np.zeros(len(keep), int), parent=[-1], level=np.zeros(len(keep), int),
+                       domains=np.array(keys)[keep], categories=[2, 2])
+
+
+def test_short_cycles_keep_every_relation():
+    table, _, _ = two_way(np.ones((3, 4)))
+    C = table.cycles
+    assert C.shape[0] > 0
+    assert np.abs((table.relations @ C.T).toarray()).max() == 0
+    # in a two-way table with margins every cycle found moves at least four cells: the smallest
+    # moves are rectangles of four interior cells (or chains through the margins)
+    assert np.diff(C.indptr).min() >= 3
+
+
+# --------------------------------------------------------------------------------------------
+# Primary suppression
+
+
+def test_threshold_and_unanimous_rules_and_the_side_to_protect():
+    # (n, x) with k = 5 and unanimous_below = 10
+    n = np.array([100, 100, 100, 100, 100, 8, 8, 0, 4])
+    x = np.array([4, 5, 96, 0, 100, 0, 8, 0, 0])
+    p = S.primary_cells(n, x, min_respondents=5, unanimous_below=10)
+    assert p.few_respondents.tolist() == [True, False, True, False, False, False, False, False, True]
+    # x = 0 or x = n counts only in cells under 10 persons (and never without sample)
+    assert p.unanimous.tolist() == [False, False, False, False, False, True, True, False, True]
+    # the side held by few (or none, under the unanimous rule) is the one protected
+    assert p.protect_count.tolist() == [True, False, False, False, False, True, False, False, True]
+    assert p.protect_complement.tolist() == [False, False, True, False, False, False, True, False, True]
+    off = S.primary_cells(n, x, min_respondents=5, unanimous_below=0)
+    assert not off.unanimous.any()
+    # n = 4, x = 0: flagged because few (4) lack it; the count with it is 0, and protecting that
+    # is the unanimous rule's business, off here
+    assert off.protect_complement[8] and not off.protect_count[8]
+
+
+# --------------------------------------------------------------------------------------------
+# Known patterns
+
+
+VALUES_3X4 = np.array([[12, 40, 55, 70],
+                       [30, 45, 60, 80],
+                       [50, 65, 35, 90]], dtype=float)
+
+
+def test_two_way_table_one_primary_needs_a_rectangle_of_four():
+    table, keys, values = two_way(VALUES_3X4)
+    at = {k: i for i, k in enumerate(keys)}
+    required = np.zeros(len(keys))
+    required[at[(0, 0)]] = 10
+    q = exact_quantity(values, required)
+    cost = S.suppression_cost(table, kind="weighted_base", weighted_base=values)
+    result = S.protect_table(table, quantities=[q], withheld=np.zeros(len(keys), bool),
+                             eligible=np.ones(len(keys), bool), cost=cost)
+    # Each relation holding the primary needs another hidden cell, and so does every relation of
+    # those: the least such set of interior cells is a rectangle (0,0), (0,c), (r,0), (r,c); a
+    # margin costs at least its row or column (>= 177) and would need partners of its own. The
+    # rectangles cost a(0,c) + a(r,0) + a(r,c): r=1,c=1: 40+30+45 = 115 is the least (next 140).
+    hidden = {keys[i] for i in np.flatnonzero(result.hidden)}
+    assert hidden == {(0, 0), (0, 1), (1, 0), (1, 1)}
+    assert result.cost == pytest.approx(115)
+    assert result.ok and result.method == "milp"
+    # Its range by hand: moving t around the rectangle (+t at (0,0) and (1,1), −t at (0,1), (1,0))
+    # keeps every margin; t <= min(40, 30) = 30 and t >= −min(12, 45) = −12: [0, 42].
+    lo, hi, _, _ = S.feasible_range(table, q, result.hidden, at[(0, 0)])
+    assert (lo, hi) == (pytest.approx(0, abs=1e-7), pytest.approx(42))
+    audit = result.audits[0]
+    i = at[(0, 0)]
+    assert 0 - 1e-7 <= audit.lower[i] <= audit.upper[i] <= 42 + 1e-7  # proven part of the range
+    assert audit.upper[i] - audit.lower[i] >= 10
+
+
+def test_rectangle_shape_whatever_the_cost_of_cells():
+    table, keys, values = two_way(VALUES_3X4)
+    at = {k: i for i, k in enumerate(keys)}
+    required = np.zeros(len(keys))
+    required[at[(2, 3)]] = 10
+    cost = S.suppression_cost(table, kind="cells", weighted_base=values)
+    result = S.protect_table(table, quantities=[exact_quantity(values, required)],
+                             withheld=np.zeros(len(keys), bool), eligible=np.ones(len(keys), bool), cost=cost)
+    hidden = [keys[i] for i in np.flatnonzero(result.hidden)]
+    # cost 'cells': interior cells cost 1, margins 2: any rectangle through (2,3) costs 3 and is
+    # the least; which one is a tie
+    rows, cols = {r for r, _ in hidden}, {c for _, c in hidden}
+    assert len(hidden) == 4 and len(rows) == 2 and len(cols) == 2 and -1 not in rows | cols
+    assert (2, 3) in hidden and result.cost == 3 and result.ok
+
+
+def test_hierarchy_primary_area_needs_a_sibling_with_room_and_nothing_above():
+    # A1 = 3 needs a range 10 wide. Hiding A2 (2) alone leaves y1 + y2 = 5: A1 in [0, 5], too
+    # narrow; A3 (50) gives A1 in [0, 53]. Anything above (R1 = 55) would need R2 (75) as well,
+    # since nation = R1 + R2. So: A1 and A3, whatever the cost kind.
+    table, values = hierarchy([3, 2, 50, 20, 25, 30])
+    required = np.zeros(9)
+    required[3] = 10
+    q = exact_quantity(values, required)
+    for kind in ("weighted_base", "cells"):
+        cost = S.suppression_cost(table, kind=kind, weighted_base=values)
+        result = S.protect_table(table, quantities=[q], withheld=np.zeros(9, bool), eligible=np.ones(9, bool),
+                                 cost=cost)
+        assert np.flatnonzero(result.hidden).tolist() == [3, 5], kind
+        assert result.ok
+        lo, hi, _, _ = S.feasible_range(table, q, result.hidden, 3)
+        assert (lo, hi) == (pytest.approx(0, abs=1e-7), pytest.approx(53))  # y1 + y3 = 53, both >= 0
+
+
+def test_unreliable_cells_hidden_anyway_serve_as_complements_at_no_cost():
+    # A2 (40) is withheld for reliability: it protects A1 (12) by itself (A1 in [0, 52]) and
+    # nothing more is hidden
+    table, values = hierarchy([12, 40, 50, 20, 25, 30])
+    required = np.zeros(9)
+    required[3] = 10
+    withheld = np.zeros(9, bool)
+    withheld[4] = True
+    result = S.protect_table(table, quantities=[exact_quantity(values, required)], withheld=withheld,
+                             eligible=~withheld, cost=np.ones(9))
+    assert np.flatnonzero(result.hidden).tolist() == [3, 4]
+    assert not result.complementary.any() and result.cost == 0 and result.ok
+
+
+def test_rounding_intervals_widen_the_range_by_hand():
+    # R1 = A1 + A2 + A3 = 12 + 30 + 58 = 100. Published to the nearest 10: R1 = 100 so R1 is in
+    # [95, 105]; A3 = 60 so A3 is in [55, 65]; everything else of R2 and the nation likewise. With
+    # A1 and A2 hidden: y1 + y2 = R1 − A3 in [95 − 65, 105 − 55] = [30, 50], so A1 in [0, 50]
+    # (exactly: [0, 42]). R2's side can absorb R1's slack only within the nation's interval, which
+    # the [95, 105] bound already respects.
+    table, values = hierarchy([12, 30, 58, 20, 25, 30])
+    hidden = np.zeros(9, bool)
+    hidden[[3, 4]] = True
+    exact = exact_quantity(values, np.zeros(9))
+    assert S.feasible_range(table, exact, hidden, 3)[:2] == (pytest.approx(0, abs=1e-7), pytest.approx(42))
+    rounded = exact_quantity(values, np.zeros(9), step=10)
+    assert S.feasible_range(table, rounded, hidden, 3)[:2] == (pytest.approx(0, abs=1e-7), pytest.approx(50))
+
+
+def test_audit_fails_a_pattern_whose_partner_is_too_small():
+    # A1 = 3 with only A2 = 2 beside it: A1 in [0, 5], 5 wide, short of the 10 required
+    table, values = hierarchy([3, 2, 50, 20, 25, 30])
+    required = np.zeros(9)
+    required[3] = 10
+    hidden = np.zeros(9, bool)
+    hidden[[3, 4]] = True
+    audit, cuts = S.audit_quantity(table, exact_quantity(values, required), hidden)
+    assert not audit.ok[3] and audit.ok[[0, 1, 2, 4, 5, 6, 7, 8]].all()
+    assert (audit.lower[3], audit.upper[3]) == (pytest.approx(0, abs=1e-7), pytest.approx(5))
+    assert len(cuts) == 1 and cuts[0].cell == 3
+    # the cut bounds A1's width by constant + the gains of the hidden cells: 5 now (A1's own 3
+    # and A2's 2, their values, the room they have to fall); hiding A3 would add its 50
+    cut = cuts[0]
+    gain = dict(zip(cut.index.tolist(), cut.gain.tolist()))
+    assert cut.constant + gain[3] + gain[4] == pytest.approx(5)
+    assert gain[5] == pytest.approx(50) and cut.shortfall(hidden) == pytest.approx(5)
+
+
+# --------------------------------------------------------------------------------------------
+# The dual cuts against brute force
+
+
+@pytest.mark.parametrize("step", [0.0, 10.0])
+def test_dual_cut_equals_the_width_now_and_bounds_it_for_every_other_pattern(step):
+    rng = np.random.default_rng(3)
+    table, keys, values = two_way(rng.integers(5, 60, (3, 3)).astype(float))
+    at = {k: i for i, k in enumerate(keys)}
+    primary = at[(0, 0)]
+    required = np.zeros(len(keys))
+    required[primary] = 1e6  # unreachable: we want the cut, not a pass
+    q = exact_quantity(values, required, step=step)
+    hidden = np.zeros(len(keys), bool)
+    hidden[[primary, at[(0, 1)]]] = True
+    lo, hi, cut, _ = S.feasible_range(table, q, hidden, primary)
+    assert cut is not None
+
+    def bound(mask):
+        return cut.constant + float(cut.gain[mask[cut.index]].sum())
+
+    assert bound(hidden) == pytest.approx(hi - lo, rel=1e-7, abs=1e-6)  # strong duality now
+    free = [at[k] for k in [(1, 0), (1, 1), (2, 2), (-1, 0), (0, -1), (2, 1)]]
+    for choice in itertools.product([False, True], repeat=len(free)):
+        mask = hidden.copy()
+        mask[free] = choice
+        lo_z, hi_z, _, _ = S.feasible_range(table, q, mask, primary)
+        assert hi_z - lo_z <= bound(mask) + 1e-6 * max(1.0, hi_z - lo_z), choice  # weak duality
+
+
+# --------------------------------------------------------------------------------------------
+# milp versus greedy, time limit
+
+
+def random_case(seed: int):
+    rng = np.random.default_rng(seed)
+    if seed % 2:
+        table, keys, values = two_way(rng.integers(1, 60, (3, 4)).astype(float))
+    else:
+        table, values = hierarchy(rng.integers(1, 60, 6))
+    n = len(values)
+    required = np.zeros(n)
+    candidates = np.flatnonzero(table.coarseness == 0)
+    for i in rng.choice(candidates, size=2, replace=False):
+        required[i] = max(0.5 * values[i], 8.0)
+    withheld = np.zeros(n, bool)
+    if seed % 4 == 0:  # sometimes one unreliable cell hidden anyway
+        withheld[rng.choice(np.flatnonzero(required == 0), size=1)] = True
+    kind = "cells" if seed % 3 else "weighted_base"
+    cost = S.suppression_cost(table, kind=kind, weighted_base=values)
+    return table, exact_quantity(values, required, step=float(rng.choice([0, 5]))), withheld, cost
+
+
+@pytest.mark.parametrize("seed", range(16))
+def test_milp_is_never_worse_than_greedy_and_both_protect(seed):
+    table, q, withheld, cost = random_case(seed)
+    common = dict(quantities=[q], withheld=withheld, eligible=~withheld & (q.required == 0), cost=cost)
+    best = S.protect_table(table, method="milp", **common)
+    greedy = S.protect_table(table, method="greedy", **common)
+    assert best.method == "milp" and greedy.method == "greedy"
+    assert best.cost <= greedy.cost + 1e-9
+    for result in (best, greedy):
+        assert result.ok
+        for i in np.flatnonzero(q.required > 0):  # exact ranges, recomputed directly
+            lo, hi, _, _ = S.feasible_range(table, q, result.hidden, int(i))
+            assert hi - lo >= q.required[i] * (1 - 1e-7)
+
+
+def test_time_limit_falls_back_to_a_greedy_pattern_that_is_audited():
+    table, keys, values = two_way(VALUES_3X4)
+    required = np.zeros(len(keys))
+    required[keys.index((0, 0))] = 10
+    result = S.protect_table(table, quantities=[exact_quantity(values, required)],
+                             withheld=np.zeros(len(keys), bool), eligible=np.ones(len(keys), bool),
+                             cost=np.ones(len(keys)), time_limit=0.0)
+    assert result.method == "greedy" and "time limit" in result.status
+    assert result.ok and result.complementary.sum() >= 3
+
+
+def test_quantity_refuses_intervals_that_exclude_the_truth():
+    with pytest.raises(ValueError, match="published intervals"):
+        S.Quantity(name="c", value=np.array([10.0]), published_lower=np.array([11.0]),
+                   published_upper=np.array([12.0]), hidden_lower=np.zeros(1), hidden_upper=np.full(1, 20.0),
+                   required=np.zeros(1))
