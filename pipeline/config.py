@@ -122,9 +122,7 @@ def _one_of(allowed: list[str]):
 
     def check(value: str) -> str:
         if value not in allowed:
-            raise PydanticCustomError("choice", "{value} is not allowed; allowed: {allowed}{hint}",
-                                      {"value": repr(value), "allowed": ", ".join(allowed),
-                                       "hint": did_you_mean(value, allowed)})
+            raise PydanticCustomError("choice", "{text}", {"text": not_allowed(value, allowed)})
         return value
 
     return check
@@ -310,6 +308,11 @@ def _delete_at(data: Any, loc: tuple) -> None:
 # Error wording
 
 
+def not_allowed(value: Any, allowed: list) -> str:
+    """"'x' is not allowed; allowed: a, b (did you mean 'a'?)" — one wording for every choice."""
+    return f"{value!r} is not allowed; allowed: {', '.join(map(str, allowed))}{did_you_mean(value, allowed)}"
+
+
 def did_you_mean(value: Any, allowed: typing.Iterable[Any]) -> str:
     """' (did you mean 'x'?)' when a close match exists, else ''."""
     match = difflib.get_close_matches(str(value), [str(a) for a in allowed], n=1, cutoff=0.6)
@@ -367,8 +370,7 @@ def _describe_pydantic_error(err: dict) -> str:
         return f"{_key_path(loc)}: {err['msg']}"
     if kind == "literal_error":
         allowed = re.findall(r"'([^']*)'", err.get("ctx", {}).get("expected", ""))
-        return (f"{_key_path(loc)}: {value!r} is not allowed; allowed: {', '.join(allowed)}"
-                f"{did_you_mean(value, allowed)}")
+        return f"{_key_path(loc)}: {not_allowed(value, allowed)}"
     shown = value if not isinstance(value, (dict, list)) else type(value).__name__
     return f"{_key_path(loc)}: {shown!r} is not valid: {err['msg']}"
 
@@ -377,7 +379,7 @@ def _choice(path: str, value: str, allowed: typing.Iterable[str]) -> list[str]:
     allowed = list(allowed)
     if value in allowed:
         return []
-    return [f"{path}: {value!r} is not allowed; allowed: {', '.join(allowed)}{did_you_mean(value, allowed)}"]
+    return [f"{path}: {not_allowed(value, allowed)}"]
 
 
 # --------------------------------------------------------------------------------------------

@@ -55,7 +55,6 @@ from pipeline import demo
 from pipeline.config import Config, load_config
 from pipeline.errors import ConfigError
 from pipeline.flags import Status
-from pipeline.methods import intervals
 from pipeline.methods.intervals import IntervalMethod
 from pipeline.stages import aggregate, assess, derive, estimate, ingest, protect
 
@@ -231,20 +230,6 @@ def _status(frame: pd.DataFrame, config: Config) -> np.ndarray:
     return protect.protect(frame, severity, reasons, config)["status"].to_numpy()
 
 
-def _with_interval(frame: pd.DataFrame, config: Config) -> pd.DataFrame:
-    """`frame` (estimated under another interval method of the same design) with the interval of
-    `config`, computed from the same inputs `estimate.estimate` gives the interval function.
-    Everything else estimate computes (p̂, variance, effective n, df, cv) does not depend on the
-    interval method, and the variance is the costly part (linearization above all), so it is
-    computed once per design; `_check_shortcuts` compares with estimate.estimate itself."""
-    est = config.estimation
-    interval = intervals.proportion_interval(
-        frame["estimate"].to_numpy(), frame["effective_n"].to_numpy(), method=est.interval,
-        confidence=est.confidence, std_error=frame["std_error"].to_numpy(),
-        df=frame["degrees_of_freedom"].to_numpy(), sample_size=frame["sample_size"].to_numpy(dtype=np.float64))
-    return frame.assign(ci_lower=interval.lower, ci_upper=interval.upper)
-
-
 def _estimates(study: _Study, microdata: pd.DataFrame, variances: tuple[str, ...]):
     """Yield (variance, interval, estimate frame, status) for one sample."""
     tables: dict[str, aggregate.CellTable] = {}
@@ -257,7 +242,7 @@ def _estimates(study: _Study, microdata: pd.DataFrame, variances: tuple[str, ...
         custom_status = None
         for interval in INTERVAL_METHODS:
             config = study.configs[(variance, interval)]
-            frame = first if interval == INTERVAL_METHODS[0] else _with_interval(first, config)
+            frame = first if interval == INTERVAL_METHODS[0] else estimate.with_interval(first, config)
             if config.reliability.standard != "custom":
                 status = _status(frame, config)
             else:

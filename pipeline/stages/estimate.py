@@ -23,22 +23,29 @@ def estimate(cells: CellTable, config) -> pd.DataFrame:
     v = cell_variance(cells, config, p_hat=p_hat, n=n, lin=lin)
     se = np.sqrt(v)
     n_eff = variance.effective_n(v, p_hat, n)
-    df = cell_degrees_of_freedom(cells, config, n=n, lin=lin)
-    est = config.estimation
-    interval = intervals.proportion_interval(p_hat, n_eff, method=est.interval, confidence=est.confidence,
-                                             std_error=se, df=df, sample_size=n)
     f["estimate"] = p_hat
     f["variance"] = v
-    f["degrees_of_freedom"] = df
+    f["degrees_of_freedom"] = cell_degrees_of_freedom(cells, config, n=n, lin=lin)
     f["std_error"] = se
-    f["ci_lower"] = interval.lower
-    f["ci_upper"] = interval.upper
-    f["margin_of_error"] = intervals.z_value(est.margin_confidence) * se
+    f["effective_n"] = n_eff
+    f = with_interval(f, config)
+    f["margin_of_error"] = intervals.z_value(config.estimation.margin_confidence) * se
     with np.errstate(invalid="ignore", divide="ignore"):
         f["cv"] = np.where(p_hat > 0, se / p_hat, np.nan)
     f["design_effect"] = variance.design_effect(v, p_hat, n)
-    f["effective_n"] = n_eff
-    return f
+    return f[[c for c in f.columns if c != "effective_n"] + ["effective_n"]]
+
+
+def with_interval(frame: pd.DataFrame, config) -> pd.DataFrame:
+    """`frame` (holding estimate, effective_n, std_error, degrees_of_freedom, sample_size) with
+    ci_lower and ci_upper by the configured interval method. Apart from the other estimates, so a
+    study can try several interval methods on one variance computation."""
+    est = config.estimation
+    interval = intervals.proportion_interval(
+        frame["estimate"].to_numpy(), frame["effective_n"].to_numpy(), method=est.interval,
+        confidence=est.confidence, std_error=frame["std_error"].to_numpy(),
+        df=frame["degrees_of_freedom"].to_numpy(), sample_size=frame["sample_size"].to_numpy(dtype=np.float64))
+    return frame.assign(ci_lower=interval.lower, ci_upper=interval.upper)
 
 
 def cell_variance(cells: CellTable, config, *, p_hat: np.ndarray, n: np.ndarray,

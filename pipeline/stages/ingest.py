@@ -411,13 +411,17 @@ def _rows_skipping(first_row: int, count: int, skipped: list[int]) -> np.ndarray
     return candidates[~np.isin(candidates, later)][:count]
 
 
-def _failure_rows(frame: pd.DataFrame, mask: np.ndarray, column: str, rule: RejectReason,
-                  id_column: str, values=None) -> pd.DataFrame:
-    positions = np.flatnonzero(mask)
-    shown = (values if values is not None else frame[column]).iloc[positions]
+def _reject_rows(frame: pd.DataFrame, id_column: str, positions: np.ndarray, column, rule, value) -> pd.DataFrame:
+    """Reject rows for the records at `positions` of the batch (row numbers are filled in later)."""
     return pd.DataFrame({"row_number": None, "record_id": frame[id_column].iloc[positions].astype(str).to_numpy(),
-                         "column": column, "rule": rule.value, "value": shown.astype(str).to_numpy(),
+                         "column": column, "rule": rule, "value": np.asarray(value).astype(str),
                          "_position": positions})
+
+
+def _failure_rows(frame: pd.DataFrame, mask: np.ndarray, column: str, rule: RejectReason,
+                  id_column: str) -> pd.DataFrame:
+    positions = np.flatnonzero(mask)
+    return _reject_rows(frame, id_column, positions, column, rule.value, frame[column].iloc[positions].to_numpy())
 
 
 def _coerce_types(config, frame: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
@@ -515,10 +519,8 @@ def _schema_failures(schema: pa.DataFrameSchema, frame: pd.DataFrame, id_column:
     positions = cases["index"].astype(int).to_numpy()
     rule = cases["check"].astype(str).map(
         lambda c: RejectReason.MISSING_NOT_ALLOWED.value if c == _PANDERA_NULL_CHECK else c)
-    return pd.DataFrame({"row_number": None,
-                         "record_id": frame[id_column].iloc[positions].astype(str).to_numpy(),
-                         "column": cases["column"].astype(str).to_numpy(), "rule": rule.to_numpy(),
-                         "value": cases["failure_case"].astype(str).to_numpy(), "_position": positions})
+    return _reject_rows(frame, id_column, positions, cases["column"].astype(str).to_numpy(), rule.to_numpy(),
+                        cases["failure_case"].astype(str).to_numpy())
 
 
 class SeenIds:

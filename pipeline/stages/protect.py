@@ -244,10 +244,9 @@ def _quantities(cells: pd.DataFrame, severity: np.ndarray, reasons: list[list[st
     known = n == 0
     published = severity < SEVERITY[Status.SUPPRESSED]
     # rounding intervals of the published counts (halves up: |rounded − true| <= step/2)
-    b_lo = np.maximum(suppression.round_half_up(base, step) - half, 0.0)
-    b_hi = suppression.round_half_up(base, step) + half
-    c_lo = np.maximum(suppression.round_half_up(count, step) - half, 0.0)
-    c_hi = suppression.round_half_up(count, step) + half
+    base_pub, count_pub = suppression.round_half_up(base, step), suppression.round_half_up(count, step)
+    b_lo, b_hi = np.maximum(base_pub - half, 0.0), base_pub + half
+    c_lo, c_hi = np.maximum(count_pub - half, 0.0), count_pub + half
     # a published estimate p (to `decimals`, so within ±δ) ties the count to the base
     p = np.nan_to_num(cells["estimate"].to_numpy(dtype=np.float64), nan=0.0)
     delta = 0.0 if dis.decimals is None else 0.5 * 10.0 ** (-dis.decimals)
