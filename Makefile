@@ -27,7 +27,7 @@ test: $(VENV)/.installed-test
 check: $(VENV)/.installed
 	$(BIN)/ratebook check configs/demo.yaml
 
-# Coverage study of the intervals on the demo design (about 9 minutes on 2 cores; not part of
+# Coverage study of the intervals on the demo design (about 9–11 minutes on 2 cores; not part of
 # `make test`, which runs a small version). Needs the test extras for matplotlib.
 coverage: $(VENV)/.installed-test
 	$(BIN)/python -m pipeline.coverage --samples 500 --persons 40000 --workers 2 --out data/out/coverage
