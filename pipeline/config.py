@@ -158,7 +158,7 @@ class DisclosureConfig(_Model):
     complementary: bool = True              # complementary suppression + audit (pipeline.methods.suppression)
     round_counts_to: int = Field(default=10, ge=0)
     protection: ProtectionConfig = Field(default_factory=ProtectionConfig)
-    unanimous_below: int = Field(default=0, ge=0)   # x = 0 or x = n with n below this is primary; 0 = off
+    unanimous_below: int = Field(default=10, ge=0)  # x = 0 or x = n with n below this is primary; 0 = off
     cost: Literal["cells", "weighted_base"] = "cells"
     time_limit_seconds: float = Field(default=60, gt=0)
     decimals: int | None = Field(default=4, ge=0, le=12)   # estimates and intervals in the public files

@@ -331,6 +331,22 @@ def test_cells_carry_the_audit_and_the_manifest_its_summary(release):
     assert ((lo[few_have] <= value[few_have] + 1e-6) & (value[few_have] <= hi[few_have] + 1e-6)).all()
     assert (hi - lo)[few_have].ge(need[few_have] * (1 - 1e-7)).all()
     assert (p["audit_sample_upper"] - p["audit_sample_lower"]).ge(K - 1e-7).all()
+    # every withheld cell (primary, complementary or unreliable) has its range bracketed: the truth
+    # within the values proven possible, those within the bounds a reader can work out; published
+    # cells have none
+    withheld = cells["status"].eq("suppressed") & cells["sample_size"].gt(0)
+    for value_col, (lo_c, hi_c, out_lo, out_hi) in (
+            ("weighted_count", ("audit_lower", "audit_upper", "audit_outer_lower", "audit_outer_upper")),
+            ("sample_size", ("audit_sample_lower", "audit_sample_upper", "audit_sample_outer_lower",
+                             "audit_sample_outer_upper"))):
+        w = cells[withheld]
+        tol = 1e-6 * np.maximum(1.0, w[value_col].abs())
+        assert w[[lo_c, hi_c, out_lo, out_hi]].notna().all().all()
+        assert (w[out_lo] <= w[lo_c] + tol).all() and (w[lo_c] <= w[value_col] + tol).all()
+        assert (w[value_col] <= w[hi_c] + tol).all() and (w[hi_c] <= w[out_hi] + tol).all()
+        assert cells.loc[cells["status"].ne("suppressed"), [lo_c, out_hi]].isna().all().all()
+    ranges = summary["audit"]["ranges_of_withheld_cells"]
+    assert ranges["weighted_count"]["withheld_cells"] == int(withheld.sum())
 
 
 # --------------------------------------------------------------------------------------------

@@ -80,6 +80,7 @@ __all__ = [
     "Quantity",
     "QuantityAudit",
     "audit_quantity",
+    "derivable_range",
     "feasible_range",
     "linked_table",
     "primary_cells",
@@ -455,14 +456,18 @@ class Quantity:
 class QuantityAudit:
     """What the audit proved for one quantity under one pattern.
 
-    lower/upper: for every hidden cell that needs protection, values it could take that a reader
-    cannot rule out (the feasible range contains [lower, upper]; it is the exact min and max where
-    `exact`); NaN elsewhere. ok: the proven width reaches `required` (True where nothing is
+    lower/upper (inner): for every hidden cell, values it could take that a reader cannot rule out
+    (the feasible range contains [lower, upper]). outer_lower/outer_upper: bounds a reader can work
+    out (the feasible range lies within them; `derivable_range`). exact: the two meet, or the
+    linear programs gave the min and max: then lower/upper is the feasible range itself. NaN for
+    published cells. ok: the proven width upper − lower reaches `required` (True where nothing is
     required or the cell is published)."""
 
     name: str
     lower: np.ndarray
     upper: np.ndarray
+    outer_lower: np.ndarray
+    outer_upper: np.ndarray
     exact: np.ndarray
     required: np.ndarray
     ok: np.ndarray
@@ -940,10 +945,12 @@ def audit_quantity(table: LinkedTable, quantity: Quantity, hidden, *, witnesses:
     upper = np.full(n, np.nan)
     exact = np.zeros(n, dtype=bool)
     cuts: list[_Cut] = []
+    b_lo, b_hi = _bounds(q, hidden)
+    # a hidden cell in no relation can take any value within its own bounds
+    lonely = hidden & (np.asarray(abs(table.relations).sum(axis=0)).ravel() == 0)
+    lower[lonely], upper[lonely], exact[lonely] = b_lo[lonely], b_hi[lonely], True
     if len(targets):
-        # a hidden cell in no relation can take any value within its own bounds
-        lonely = targets[np.asarray(abs(table.relations[:, targets]).sum(axis=0)).ravel() == 0]
-        linked = np.setdiff1d(targets, lonely)
+        linked = targets[~lonely[targets]]
         _prove(q, witnesses, hidden, linked, proven)
         if (~proven[linked]).any():
             _cycle_proofs(table, q, hidden, linked[~proven[linked]], witnesses)
@@ -953,8 +960,6 @@ def audit_quantity(table: LinkedTable, quantity: Quantity, hidden, *, witnesses:
             _find_witnesses(table, q, hidden, linked, witnesses, proven, rng)
         if (~proven[linked]).any():  # then neighbourhoods, with the published slack beside them
             _find_witnesses(table, q, hidden, linked, witnesses, proven, rng, radius=_NEIGHBOURHOOD)
-        b_lo, b_hi = _bounds(q, hidden)
-        lower[lonely], upper[lonely], exact[lonely] = b_lo[lonely], b_hi[lonely], True
         b_free = b_hi > b_lo
         face_value = exact_model = None  # component labels, computed once for all the cells left
         for i in linked[~proven[linked]]:
@@ -980,13 +985,76 @@ def audit_quantity(table: LinkedTable, quantity: Quantity, hidden, *, witnesses:
             if not _reaches(hi_i - lo_i, q.required[i]):
                 usable = cut is not None and bound <= (hi_i - lo_i) + 1e-6 * max(1.0, hi_i - lo_i) + 1e-6
                 cuts.append(cut if usable else _plain_cut(table, hidden, int(i), q))
-        lo, hi = witnesses.observed(q, hidden)
-        inner = linked[~exact[linked] & np.isnan(lower[linked])]
-        lower[inner] = q.value[inner] + lo[inner]
-        upper[inner] = q.value[inner] + hi[inner]
+    lo, hi = witnesses.observed(q, hidden)
+    inner = targets[~exact[targets]]
+    lower[inner] = np.fmin(lower[inner], q.value[inner] + lo[inner])
+    upper[inner] = np.fmax(upper[inner], q.value[inner] + hi[inner])
     ok = np.ones(n, dtype=bool)
     ok[targets] = _reaches((upper - lower)[targets], q.required[targets])
-    return QuantityAudit(name=q.name, lower=lower, upper=upper, exact=exact, required=q.required, ok=ok), cuts
+    nan = np.full(n, np.nan)
+    return QuantityAudit(name=q.name, lower=lower, upper=upper, outer_lower=nan, outer_upper=nan.copy(),
+                         exact=exact, required=q.required, ok=ok), cuts
+
+
+def _with_ranges(table: LinkedTable, q: Quantity, hidden: np.ndarray, audit: QuantityAudit,
+                 witnesses: _Witnesses) -> QuantityAudit:
+    """The audit of the final pattern with a range for every hidden cell, not only the protected
+    ones: inner, the values the points found give it; outer, the bounds a reader can work out
+    (`derivable_range`); where they meet, the exact range."""
+    lower, upper, exact = audit.lower.copy(), audit.upper.copy(), audit.exact.copy()
+    lo, hi = witnesses.observed(q, hidden)
+    rest = hidden & ~exact
+    lower[rest] = np.fmin(lower[rest], q.value[rest] + lo[rest])
+    upper[rest] = np.fmax(upper[rest], q.value[rest] + hi[rest])
+    outer_lower, outer_upper = derivable_range(table, q, hidden)
+    tol = 1e-6 * np.maximum(1.0, np.abs(q.value))
+    exact |= hidden & (lower <= outer_lower + tol) & (upper >= outer_upper - tol)
+    outer_lower = np.where(hidden, np.where(exact, lower, np.fmin(outer_lower, lower)), np.nan)
+    outer_upper = np.where(hidden, np.where(exact, upper, np.fmax(outer_upper, upper)), np.nan)
+    return QuantityAudit(name=q.name, lower=lower, upper=upper, outer_lower=outer_lower, outer_upper=outer_upper,
+                         exact=exact, required=audit.required, ok=audit.ok)
+
+
+def derivable_range(table: LinkedTable, quantity: Quantity, hidden, *, passes: int = 100):
+    """Bounds on every cell that a reader can work out by interval propagation through the
+    relations: in a relation Σ a_k y_k = 0, a_j y_j lies between −max and −min of Σ_{k≠j} a_k y_k,
+    repeated until nothing tightens by more than 1e-9 of the cell's size (or `passes` run out).
+    Every pass keeps the feasible set inside the bounds, so they are outer bounds: the exact range
+    (the linear programs' min and max) lies within, and any single pass is already valid. When
+    the relations form no cycle (a single hierarchy) the fixed point is the exact range; with
+    cycles (geography crossed with categories) it can be wider."""
+    hidden = np.asarray(hidden, dtype=bool)
+    lo, hi = _bounds(quantity, hidden)
+    coo = table.relations.tocoo()
+    r, c, a = coo.row, coo.col, coo.data
+    n_rel = table.n_relations
+    scale = 1e-9 * np.maximum(1.0, np.abs(quantity.value))
+
+    def others(term: np.ndarray, bad: float) -> np.ndarray:
+        # Σ_{k≠j} of the terms of j's relation, with infinite terms counted apart (inf − inf)
+        infinite = term == bad
+        finite_sum = np.bincount(r, np.where(infinite, 0.0, term), minlength=n_rel)
+        n_infinite = np.bincount(r, infinite, minlength=n_rel)
+        out = finite_sum[r] - np.where(infinite, 0.0, term)
+        return np.where(n_infinite[r] - infinite > 0, bad, out)
+
+    for _ in range(passes):
+        t_min = np.where(a > 0, a * lo[c], a * hi[c])  # a_k y_k at its smallest and largest
+        t_max = np.where(a > 0, a * hi[c], a * lo[c])
+        with np.errstate(invalid="ignore"):
+            rest_min, rest_max = others(t_min, -np.inf), others(t_max, np.inf)
+            from_lo = np.where(a > 0, -rest_max / a, -rest_min / a)
+            from_hi = np.where(a > 0, -rest_min / a, -rest_max / a)
+        new_lo, new_hi = lo.copy(), hi.copy()
+        np.maximum.at(new_lo, c, np.nan_to_num(from_lo, nan=-np.inf))
+        np.minimum.at(new_hi, c, np.nan_to_num(from_hi, nan=np.inf))
+        # the true values satisfy everything: keep them inside against float dust
+        new_lo, new_hi = np.minimum(new_lo, quantity.value), np.maximum(new_hi, quantity.value)
+        gained = np.maximum(new_lo - lo, hi - new_hi)
+        lo, hi = new_lo, new_hi
+        if not np.any(np.nan_to_num(gained, nan=0.0, posinf=1.0) > scale):
+            break
+    return lo, hi
 
 
 def _plain_cut(table: LinkedTable, hidden: np.ndarray, cell: int, q: Quantity) -> _Cut:
@@ -1066,12 +1134,13 @@ def protect_table(table: LinkedTable, *, quantities: list[Quantity], withheld, e
 
     def finish(hidden, method_used, status, rounds, audits):
         comp = hidden & ~fixed
+        audits = [_with_ranges(table, q, hidden, a, witnesses[q.name]) for q, a in zip(quantities, audits)]
         return ProtectionResult(hidden=hidden, complementary=comp, cost=float(cost[comp].sum()),
                                 method=method_used, status=status, rounds=rounds, audits=tuple(audits),
                                 seconds=time.perf_counter() - started)
 
-    if not primary.any():
-        return finish(fixed.copy(), method, "nothing to protect", 0, [])
+    if not primary.any():  # the audit still reports the range of every withheld cell
+        return finish(fixed.copy(), method, "nothing to protect", 0, _audit_all(table, quantities, fixed, witnesses)[0])
 
     status = ""
     if method == "milp":

@@ -29,7 +29,9 @@ The rules and thresholds defer to the office's confidentiality rules and local l
 
 from __future__ import annotations
 
+import os
 import time
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import pandas as pd
@@ -44,12 +46,17 @@ FIGURE_COLUMNS = ["estimate", "std_error", "ci_lower", "ci_upper", "margin_of_er
 # of them gives the estimate back more precisely than the estimate itself is printed.
 DECIMAL_COLUMNS = ["estimate", "std_error", "ci_lower", "ci_upper", "margin_of_error", "cv", "design_effect",
                    "effective_n"]
-# Per-cell audit results in internal/cells.parquet (NaN / NA where the cell needs no protection).
-AUDIT_COLUMNS = ["audit_lower", "audit_upper", "audit_complement_lower", "audit_complement_upper",
-                 "audit_sample_lower", "audit_sample_upper", "audit_ok"]
-_QUANTITY_COLUMNS = {"weighted_count": ("audit_lower", "audit_upper"),
-                     "weighted_complement": ("audit_complement_lower", "audit_complement_upper"),
-                     "sample_size": ("audit_sample_lower", "audit_sample_upper")}
+# Per-cell audit results in internal/cells.parquet, per audited quantity, for every withheld cell
+# (NaN for published ones): lower/upper, values a reader cannot rule out (proven by feasible
+# points); outer_lower/outer_upper, bounds a reader can work out; the exact range lies between
+# them (they are equal where it is known exactly). audit_ok: NA where no protection is needed.
+_QUANTITY_COLUMNS = {
+    "weighted_count": ("audit_lower", "audit_upper", "audit_outer_lower", "audit_outer_upper"),
+    "weighted_complement": ("audit_complement_lower", "audit_complement_upper",
+                            "audit_complement_outer_lower", "audit_complement_outer_upper"),
+    "sample_size": ("audit_sample_lower", "audit_sample_upper", "audit_sample_outer_lower",
+                    "audit_sample_outer_upper")}
+AUDIT_COLUMNS = [col for cols in _QUANTITY_COLUMNS.values() for col in cols] + ["audit_ok"]
 _NAMED_CELLS = 20  # cells listed when the audit refuses a release
 
 
@@ -95,38 +102,65 @@ def protect_release(frame: pd.DataFrame, severity: np.ndarray, reasons: list[lis
 
     structure = _Structure(f, config, geography)
     deadline = started + dis.time_limit_seconds
-    per_indicator, failures = {}, []
-    complementary = np.zeros(len(f), dtype=bool)
-    audit_ok = np.full(len(f), True)
-    totals = {"checks": 0, "proven_by_witnesses": 0, "proven_by_exact_range": 0}  # (cell, quantity) pairs
-    for indicator in f["indicator"].unique():
-        rows = np.flatnonzero(f["indicator"].to_numpy() == indicator)
+    indicator_of = f["indicator"].to_numpy()
+    blocks = [np.flatnonzero(indicator_of == ind) for ind in pd.unique(indicator_of)]
+    for rows in blocks:
+        structure.table(rows)  # build the shared relations once, before the threads
+
+    def protect_indicator(rows: np.ndarray) -> suppression.ProtectionResult:
         table = structure.table(rows)
         quantities = _quantities(f.iloc[rows], severity[rows], reasons, rows, primary, config, structure)
         known = f["sample_size"].to_numpy()[rows] == 0
         withheld = (severity[rows] >= SEVERITY[Status.SUPPRESSED]) & ~known
         eligible = (severity[rows] < SEVERITY[Status.SUPPRESSED]) & ~known
         cost = suppression.suppression_cost(table, kind=dis.cost, weighted_base=f["weighted_base"].to_numpy()[rows])
-        result = suppression.protect_table(table, quantities=quantities, withheld=withheld, eligible=eligible,
-                                           cost=cost, time_limit=max(deadline - time.perf_counter(), 0.0))
+        return suppression.protect_table(table, quantities=quantities, withheld=withheld, eligible=eligible,
+                                         cost=cost, time_limit=max(deadline - time.perf_counter(), 0.0))
+
+    # indicators are independent tables; HiGHS releases the GIL while it solves, so threads
+    # overlap the linear programs of different indicators. Most withheld cells first: they take
+    # longest, and starting them early keeps the threads busy to the end.
+    work = (severity >= SEVERITY[Status.SUPPRESSED]) | primary.cells
+    order = sorted(range(len(blocks)), key=lambda k: -int(work[blocks[k]].sum()))
+    with ThreadPoolExecutor(max_workers=min(len(blocks), os.cpu_count() or 1) or 1) as pool:
+        done = dict(zip(order, pool.map(protect_indicator, [blocks[k] for k in order])))
+    results = [done[k] for k in range(len(blocks))]
+
+    per_indicator, failures = {}, []
+    complementary = np.zeros(len(f), dtype=bool)
+    audit_ok = np.full(len(f), True)
+    audit_values = {col: np.full(len(f), np.nan) for col in AUDIT_COLUMNS[:-1]}
+    totals = {"checks": 0, "proven_by_witnesses": 0, "proven_by_exact_range": 0}  # (cell, quantity) pairs
+    ranges = {q: {"withheld_cells": 0, "exact": 0, "pinned_down": 0} for q in _QUANTITY_COLUMNS}
+    base_all = f["weighted_base"].to_numpy()
+    for rows, result in zip(blocks, results):
         complementary[rows] = result.complementary
         for audit in result.audits:
-            lo_col, hi_col = _QUANTITY_COLUMNS[audit.name]
-            f.loc[f.index[rows], lo_col] = audit.lower
-            f.loc[f.index[rows], hi_col] = audit.upper
+            for col, values in zip(_QUANTITY_COLUMNS[audit.name],
+                                   (audit.lower, audit.upper, audit.outer_lower, audit.outer_upper)):
+                audit_values[col][rows] = values
             audit_ok[rows] &= audit.ok
+            ranges[audit.name]["withheld_cells"] += int(result.hidden.sum())
+            ranges[audit.name]["exact"] += int((result.hidden & audit.exact).sum())
+            # withheld, yet a reader can work the value out to within float dust: harmless for a
+            # cell withheld as unreliable (no secret), worth knowing for the office all the same
+            width = audit.outer_upper - audit.outer_lower
+            ranges[audit.name]["pinned_down"] += int(
+                (result.hidden & (width <= 1e-6 * np.maximum(1.0, np.abs(audit.outer_upper)))).sum())
             checked = (audit.required > 0) & result.hidden
             totals["checks"] += int(checked.sum())
             totals["proven_by_exact_range"] += int((checked & audit.exact & audit.ok).sum())
             totals["proven_by_witnesses"] += int((checked & ~audit.exact & audit.ok).sum())
         failures += [rows[i] for i in np.flatnonzero(result.failed)]
-        base = f["weighted_base"].to_numpy()[rows]
-        per_indicator[str(indicator)] = {
+        base = base_all[rows]
+        per_indicator[str(indicator_of[rows[0]])] = {
             "primary_cells": int(primary.cells[rows].sum()),
             "complementary_cells": int(result.complementary.sum()),
             "complementary_weighted_base": round(float(base[result.complementary].sum()), 1),
             "cost": round(result.cost, 3), "method": result.method, "solver_status": result.status,
             "rounds": result.rounds, "seconds": round(result.seconds, 3)}
+    for col, values in audit_values.items():
+        f[col] = values
 
     if failures:
         raise ReleaseRefused(
@@ -155,7 +189,8 @@ def protect_release(frame: pd.DataFrame, severity: np.ndarray, reasons: list[lis
             "cost": round(sum(v["cost"] for v in per_indicator.values()), 3),
             "cost_kind": dis.cost},
         "protection": _protection_text(config),
-        "audit": {"result": "passed", "quantities": list(_QUANTITY_COLUMNS), **totals},
+        "audit": {"result": "passed", "quantities": list(_QUANTITY_COLUMNS), **totals,
+                  "ranges_of_withheld_cells": ranges},
         "seconds": round(time.perf_counter() - started, 3),
         "indicators": per_indicator,
     }
@@ -179,7 +214,7 @@ def _describe(f: pd.DataFrame, i: int, domain_names) -> str:
     cats = ", ".join(f"{d}={row[d]}" for d in domain_names)
     return (f"{row['indicator']} {row['geo_level']} {row['geo_code']} ({row['geo_name']})"
             + (f" [{cats}]" if cats else "") + ": audit ranges "
-            + "; ".join(f"{q} {row[lo]:.6g}..{row[hi]:.6g}" for q, (lo, hi) in _QUANTITY_COLUMNS.items()
+            + "; ".join(f"{q} {row[lo]:.6g}..{row[hi]:.6g}" for q, (lo, hi, *_outer) in _QUANTITY_COLUMNS.items()
                         if pd.notna(row[lo])))
 
 
