@@ -171,6 +171,7 @@ def run(config_path: str | Path, *, release_id: str | None = None, replace: bool
         reporter.stage("aggregate: rolling up to every level and breakdown")
         t = time.perf_counter()
         cells = aggregate.roll_up(accumulators["all"], config, found.geography, layout)
+        accumulators.clear()  # the finest sums are in `cells` now; free them before estimation
         timings["roll_up"] = time.perf_counter() - t
         reporter.stage("estimate")
         t = time.perf_counter()

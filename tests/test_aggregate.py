@@ -126,3 +126,24 @@ def test_additive_relations_hold(rolled):
     assert regions == pytest.approx(nation, rel=1e-12)
     by_sex = f[(f["geo_level"] == "nation") & (f["sex"] != "all") & (f["age_group"] == "all")]
     assert by_sex["sample_size"].sum() == overall[overall["geo_level"] == "nation"]["sample_size"].iloc[0]
+
+
+def test_a_cell_where_everyone_has_the_characteristic_gives_exactly_one():
+    # the base is summed as everyone minus the records left out, the count directly; where every
+    # base record has the characteristic the two must still agree to the bit (p̂ = 1, not 1 + ε),
+    # here with weights whose sums round differently in the two orders
+    rng = np.random.default_rng(7)
+    n = 1000
+    weight = rng.uniform(0.1, 1000.0, n) * (1 + 1e-9 * rng.standard_normal(n))
+    in_base = rng.random(n) < 0.7
+    batch = derive.DerivedBatch(cell=np.zeros(n, dtype=np.int64), weight=weight,
+                                replicate_weights=weight[:, None] * rng.uniform(0.5, 1.5, (n, 4)),
+                                in_base=in_base[:, None], has_characteristic=in_base[:, None],
+                                item_nonresponse=np.zeros((n, 1), dtype=bool))
+    acc = aggregate.CellAccumulator(indicators=1, cells=1, replicates=4)
+    acc.add(batch)
+    s = acc.scalars[0, 0]
+    assert s[0] == s[1] == in_base.sum()
+    assert s[4] == s[3]  # weighted count == weighted base, exactly
+    assert s[3] == pytest.approx(weight[in_base].sum(), rel=1e-12)  # and both are the direct sum (numpy)
+    np.testing.assert_array_equal(acc.replicate_count[0, 0], acc.replicate_base[0, 0])

@@ -208,11 +208,21 @@ def _roll_up_clusters(sums: ClusterSums, config, geography: Geography, layout: D
 
 
 class CellAccumulator:
+    """Additive sums per finest cell of the columns [1, w, w², w_1..w_R] (the sample size, the
+    weighted base, Σw² and the replicate bases, all at once): over every record (`everyone`),
+    and per indicator over the records it leaves out of its base (`left_out`) and over those with
+    the characteristic (`with_characteristic`). An indicator's base is everyone − left out: a
+    record adds its row once for all indicators, then once more for each indicator it misses or
+    has, so the work follows the records, not indicators × replicates."""
+
     def __init__(self, *, indicators: int, cells: int, replicates: int):
         self.cells = cells
-        self.scalars = np.zeros((indicators, cells, len(STATISTICS)))
-        self.replicate_base = np.zeros((indicators, cells, replicates))
-        self.replicate_count = np.zeros((indicators, cells, replicates))
+        self.replicates = replicates
+        width = 3 + replicates
+        self.everyone = np.zeros((cells, width))
+        self.left_out = np.zeros((indicators, cells, width))
+        self.with_characteristic = np.zeros((indicators, cells, width))
+        self.item_nonresponse = np.zeros((indicators, cells))
         self.clusters: ClusterSums | None = None  # linearization sums, started by the first batch with a design
 
     def add(self, batch: DerivedBatch) -> None:
@@ -221,33 +231,74 @@ class CellAccumulator:
             if self.clusters is None:
                 self.clusters = ClusterSums(cells=C)
             self.clusters.add(batch)
+        n = len(batch.cell)
+        columns = np.empty((n, 3 + self.replicates))
+        columns[:, 0] = 1.0
+        columns[:, 1] = batch.weight
+        columns[:, 2] = batch.weight * batch.weight
+        if self.replicates:
+            columns[:, 3:] = batch.replicate_weights
+        _add_rows(self.everyone, batch.cell, columns, np.arange(n))
         for k in range(batch.in_base.shape[1]):
-            rows = np.flatnonzero(batch.in_base[:, k])
-            cell = batch.cell[rows]
-            y = batch.has_characteristic[rows, k].astype(np.float64)
-            w = batch.weight[rows]
-            s = self.scalars[k]
-            s[:, 0] += np.bincount(cell, minlength=C)
-            s[:, 1] += np.bincount(cell, weights=y, minlength=C)
-            s[:, 2] += np.bincount(batch.cell[batch.item_nonresponse[:, k]], minlength=C)
-            s[:, 3] += np.bincount(cell, weights=w, minlength=C)
-            s[:, 4] += np.bincount(cell, weights=w * y, minlength=C)
-            s[:, 5] += np.bincount(cell, weights=w * w, minlength=C)
-            if batch.replicate_weights is not None and len(rows):
-                reps = batch.replicate_weights[rows]
-                # one sparse-by-dense product sums every replicate column per cell at once
-                members = sparse.csr_matrix((np.ones(len(rows)), (cell, np.arange(len(rows)))), shape=(C, len(rows)))
-                self.replicate_base[k] += members @ reps
-                self.replicate_count[k] += members @ (reps * y[:, None])
+            in_base = batch.in_base[:, k]
+            _add_rows(self.left_out[k], batch.cell, columns, np.flatnonzero(~in_base))
+            _add_rows(self.with_characteristic[k], batch.cell, columns,
+                      np.flatnonzero(batch.has_characteristic[:, k] & in_base))
+            self.item_nonresponse[k] += np.bincount(batch.cell[batch.item_nonresponse[:, k]], minlength=C)
+
+    def finest_of(self, k: int) -> np.ndarray:
+        """(cells, STATISTICS + R replicate bases + R replicate counts) of indicator k."""
+        R = self.replicates
+        out = np.empty((self.cells, len(STATISTICS) + 2 * R))
+        base = self.everyone - self.left_out[k]
+        base[base[:, 0] == 0] = 0.0  # no record in the base: exactly 0, not a difference's dust
+        has = self.with_characteristic[k].copy()
+        # where every base record has the characteristic the two sums are over the same records:
+        # make them equal to the bit, so that p̂ is exactly 1 and no count exceeds its base by a
+        # rounding (sums of element-wise smaller values stay smaller, so the roll-up keeps that)
+        same = has[:, 0] == base[:, 0]
+        has[same] = base[same]
+        out[:, 0], out[:, 1], out[:, 2] = base[:, 0], has[:, 0], self.item_nonresponse[k]
+        out[:, 3], out[:, 4], out[:, 5] = base[:, 1], has[:, 1], base[:, 2]
+        out[:, 6: 6 + R] = base[:, 3:]
+        out[:, 6 + R:] = has[:, 3:]
+        return out
+
+    def finest(self) -> np.ndarray:
+        """(indicators, cells, STATISTICS + R replicate bases + R replicate counts)."""
+        return np.stack([self.finest_of(k) for k in range(self.left_out.shape[0])])
+
+    @property
+    def scalars(self) -> np.ndarray:
+        return self.finest()[:, :, : len(STATISTICS)]
+
+    @property
+    def replicate_base(self) -> np.ndarray:
+        return self.finest()[:, :, len(STATISTICS): len(STATISTICS) + self.replicates]
+
+    @property
+    def replicate_count(self) -> np.ndarray:
+        return self.finest()[:, :, len(STATISTICS) + self.replicates:]
 
     def merge(self, other: "CellAccumulator") -> None:
-        self.scalars += other.scalars
-        self.replicate_base += other.replicate_base
-        self.replicate_count += other.replicate_count
+        self.everyone += other.everyone
+        self.left_out += other.left_out
+        self.with_characteristic += other.with_characteristic
+        self.item_nonresponse += other.item_nonresponse
         if other.clusters is not None:
             if self.clusters is None:
                 self.clusters = ClusterSums(cells=self.cells)
             self.clusters.merge(other.clusters)
+
+
+def _add_rows(target: np.ndarray, cell: np.ndarray, columns: np.ndarray, rows: np.ndarray) -> None:
+    """target[c] += Σ columns[r] over the rows r of cell c: one sparse-by-dense product over the
+    cells the rows touch, reading the rows in place."""
+    if not len(rows):
+        return
+    touched, position = np.unique(cell[rows], return_inverse=True)
+    select = sparse.csr_matrix((np.ones(len(rows)), (position, rows)), shape=(len(touched), len(columns)))
+    target[touched] += select @ columns
 
 
 @dataclass
@@ -264,51 +315,63 @@ class CellTable:
 def roll_up(acc: CellAccumulator, config, geography: Geography, layout: DomainLayout) -> CellTable:
     """Sum the finest cells to every (indicator, table, geography level, breakdown) that the
     config publishes. Every geography unit and every category combination gets a row, sampled
-    or not, so the tables are complete and their additive relations hold."""
+    or not, so the tables are complete and their additive relations hold. One indicator at a
+    time, written straight into the result, so memory holds the accumulator, the result and one
+    indicator's sums, never a copy of everything."""
     indicators = list(config.indicators)
     K, G, D = len(indicators), len(geography.finest_codes), layout.n_cells
-    R = acc.replicate_base.shape[2]
-    has_reps = bool(config.replicate_columns)
-    # (G, K, D, stats) so that one sparse product rolls every statistic up a geography level
-    finest = np.concatenate([acc.scalars, acc.replicate_base, acc.replicate_count], axis=2)
-    finest = finest.reshape(K, G, D, -1).transpose(1, 0, 2, 3)
-    S = finest.shape[3]
+    R = acc.replicates
+    S = len(STATISTICS) + 2 * R
     levels = list(geography.levels)
-    by_level = {}
-    for level in levels:
-        idx = geography.unit_index[level]
-        n_units = len(geography.codes[level])
-        membership = sparse.csr_matrix((np.ones(G), (idx, np.arange(G))), shape=(n_units, G))
-        by_level[level] = (membership @ finest.reshape(G, -1)).reshape(n_units, K, D, S)
-
-    blocks, keys = [], []
+    membership = {level: sparse.csr_matrix((np.ones(G), (geography.unit_index[level], np.arange(G))),
+                                           shape=(len(geography.codes[level]), G))
+                  for level in levels}
+    plan = []  # (table's domain axes, geography levels), in the row order of `_keys` and rolled_membership
+    for table in config.tables:
+        deepest = levels.index(table.down_to) if table.down_to else len(levels) - 1
+        plan.append(([layout.names.index(name) for name in table.by], levels[: deepest + 1]))
+    rows_per_indicator = sum(len(geography.codes[level]) * int(np.prod([layout.shape[a] for a in by], dtype=np.int64))
+                             for by, lv in plan for level in lv)
+    n_scalar = len(STATISTICS)
+    # three arrays, each contiguous (estimate reads the replicate sums row by row)
+    scalars = np.empty((K * rows_per_indicator, n_scalar))
+    rep_base = np.empty((K * rows_per_indicator, R))
+    rep_count = np.empty((K * rows_per_indicator, R))
+    keys, offset = [], 0
     for k, indicator in enumerate(indicators):
-        for table in config.tables:
-            deepest = levels.index(table.down_to) if table.down_to else len(levels) - 1
-            by_axes = [layout.names.index(name) for name in table.by]
-            for level in levels[: deepest + 1]:
-                stats = by_level[level][:, k].reshape((len(geography.codes[level]),) + layout.shape + (S,))
+        stats = acc.finest_of(k).reshape(G, D * S)
+        by_level = {}
+        for level in levels:
+            # the finest level is the accumulator itself when every finest unit is its own unit
+            same = (len(geography.codes[level]) == G
+                    and np.array_equal(geography.unit_index[level], np.arange(G)))
+            by_level[level] = (stats if same else membership[level] @ stats).reshape(
+                (len(geography.codes[level]),) + layout.shape + (S,))
+        for by_axes, table_levels in plan:
+            for level in table_levels:
                 drop = tuple(1 + a for a in range(len(layout.names)) if a not in by_axes)
-                stats = stats.sum(axis=drop) if drop else stats
+                block = by_level[level].sum(axis=drop) if drop else by_level[level]
                 # remaining domain axes are in config order; put them in the table's `by` order
                 kept = sorted(by_axes)
-                stats = np.moveaxis(stats, [1 + kept.index(a) for a in by_axes], list(range(1, 1 + len(by_axes))))
-                blocks.append(stats.reshape(-1, S))
+                block = np.moveaxis(block, [1 + kept.index(a) for a in by_axes], list(range(1, 1 + len(by_axes))))
+                size = block.size // S
+                block = block.reshape(size, S)
+                scalars[offset: offset + size] = block[:, :n_scalar]
+                rep_base[offset: offset + size] = block[:, n_scalar: n_scalar + R]
+                rep_count[offset: offset + size] = block[:, n_scalar + R:]
+                offset += size
                 keys.append(_keys(indicator, level, geography, layout, by_axes))
-    values = np.concatenate(blocks, axis=0)
     frame = pd.concat(keys, ignore_index=True)
-    n_scalar = len(STATISTICS)
     for j, name in enumerate(STATISTICS):
-        frame[name] = values[:, j]
+        frame[name] = scalars[:, j]
     for name in ("sample_size", "respondents", "item_nonresponse"):
         frame[name] = np.rint(frame[name]).astype(np.int64)
     if geography.population is not None:
         frame["population"] = _population_of_whole_units(frame, geography, layout)
-    rep_base = values[:, n_scalar: n_scalar + R] if has_reps else None
-    rep_count = values[:, n_scalar + R:] if has_reps else None
     clusters = (_roll_up_clusters(acc.clusters, config, geography, layout, len(frame))
                 if acc.clusters is not None else None)
-    return CellTable(frame=frame, replicate_base=rep_base, replicate_count=rep_count, clusters=clusters)
+    return CellTable(frame=frame, replicate_base=rep_base if R else None, replicate_count=rep_count if R else None,
+                     clusters=clusters)
 
 
 def _population_of_whole_units(frame: pd.DataFrame, geography: Geography, layout: DomainLayout) -> np.ndarray:

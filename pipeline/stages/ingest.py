@@ -306,6 +306,9 @@ def iter_batches(config, files: list[SourceFile], geography: Geography) -> Itera
     """Read, type and validate every file batch by batch. Duplicate record ids are caught across
     batches and files (the first occurrence is kept)."""
     schema = build_row_schema(config, geography)
+    # the replicate weights are most of the columns: one vectorised pass over them per batch, and
+    # the schema's per-column checks of them only for a batch where that pass finds a bad value
+    without_replicates = schema.remove_columns(config.replicate_columns) if config.replicate_columns else schema
     seen = SeenIds()
     design = ClusterDesignCheck.for_config(config)
     columns = needed_columns(config)
@@ -316,7 +319,10 @@ def iter_batches(config, files: list[SourceFile], geography: Geography) -> Itera
             rejects = [malformed] if len(malformed) else []
             frame, type_rejects = _coerce_types(config, frame)
             rejects.append(type_rejects)
-            schema_failures = _schema_failures(schema, frame, config.source.record_id)
+            clean = (not config.replicate_columns
+                     or _all_valid_replicate_weights(frame[config.replicate_columns].to_numpy(dtype=np.float64)))
+            schema_failures = _schema_failures(without_replicates if clean else schema, frame,
+                                               config.source.record_id)
             if len(type_rejects):  # text that is not a number is reported once, not again as missing
                 already = set(zip(type_rejects["_position"], type_rejects["column"]))
                 schema_failures = schema_failures[[(p, c) not in already for p, c in
@@ -339,10 +345,10 @@ def iter_batches(config, files: list[SourceFile], geography: Geography) -> Itera
             count.read += n_read
             count.rejected += n_rejected
             count.accepted += n_read - n_rejected
+            accepted = frame if keep.all() else frame.loc[keep].reset_index(drop=True)  # no copy when all pass
             if design is not None:
-                design.add(frame.loc[keep])
-            yield Batch(frame=frame.loc[keep].reset_index(drop=True), rejects=rejects, count=count,
-                        rows_read=n_read, rows_rejected=n_rejected)
+                design.add(accepted)
+            yield Batch(frame=accepted, rejects=rejects, count=count, rows_read=n_read, rows_rejected=n_rejected)
         if count.read == 0:
             raise InputDataError(f"source.path: {source.path.name} holds no records")
     if design is not None:
@@ -504,6 +510,12 @@ def build_row_schema(config, geography: Geography) -> pa.DataFrameSchema:
 
 
 _PANDERA_NULL_CHECK = "not_nullable"
+
+
+def _all_valid_replicate_weights(block: np.ndarray) -> bool:
+    """The replicate-weight rule of `build_row_schema` (finite and >= 0), over all of them at once."""
+    with np.errstate(invalid="ignore"):
+        return bool(np.isfinite(block).all() and (block >= 0).all())
 
 
 def _schema_failures(schema: pa.DataFrameSchema, frame: pd.DataFrame, id_column: str) -> pd.DataFrame:
