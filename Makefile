@@ -3,7 +3,7 @@ PYTHON ?= python3
 VENV   := .venv
 BIN    := $(VENV)/bin
 
-.PHONY: demo test check coverage clean
+.PHONY: demo test check coverage bench clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -31,6 +31,14 @@ check: $(VENV)/.installed
 # `make test`, which runs a small version). Needs the test extras for matplotlib.
 coverage: $(VENV)/.installed-test
 	$(BIN)/python -m pipeline.coverage --samples 500 --persons 40000 --workers 2 --out data/out/coverage
+
+# Performance benchmark (tests/benchmarks/, not part of `make test`): generates inputs of 200k (S),
+# 2M (M) and 10M (L) records under data/bench/ (cached by size and seed), times ratebook against a
+# read floor, one DuckDB query and a pandas script, and writes data/bench/results-latest.json.
+# Choose sizes with BENCH_SIZES="S M"; more options with BENCH_ARGS="--repeats S=5,M=3,L=1".
+BENCH_SIZES ?= S M L
+bench: $(VENV)/.installed-test
+	$(BIN)/python -m tests.benchmarks.bench --sizes $(BENCH_SIZES) $(BENCH_ARGS)
 
 clean:
 	rm -rf $(VENV) data/out/* data/raw/demo_* .pytest_cache

@@ -363,7 +363,9 @@ def _parquet_batches(path: Path, columns: list[str], batch_rows: int):
     """Yields (frame, malformed-row rejects, the 1-based file row number of each frame row)."""
     first_row = 1
     try:
-        for record_batch in pq.ParquetFile(path).iter_batches(batch_size=batch_rows, columns=columns):
+        # pre_buffer off: with it pyarrow caches the selected columns of the whole file, so memory
+        # would follow the records
+        for record_batch in pq.ParquetFile(path, pre_buffer=False).iter_batches(batch_size=batch_rows, columns=columns):
             frame = record_batch.to_pandas()
             yield frame, _empty_rejects(), np.arange(first_row, first_row + len(frame))
             first_row += len(frame)
