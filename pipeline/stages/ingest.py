@@ -436,24 +436,29 @@ def _coerce_types(config, frame: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFra
     """Give every column its working type: numbers as float64 with NaN for missing, strings and
     keys as Python str with None for missing. Text that is not a number becomes a reject."""
     id_col = config.source.record_id
+    roles = _column_roles(config)
+    # columns already numeric (Parquet) are converted together: one float64 block, no copy per column
+    ready = [col for col, (_, declared) in roles.items()
+             if declared in ("integer", "number") and frame[col].dtype.kind in "iufb"]
+    block = frame[ready].to_numpy(dtype="float64", na_value=np.nan) if ready else np.empty((len(frame), 0))
     out = {}
     failures = []
-    for col, (_, declared) in _column_roles(config).items():
+    for col, (_, declared) in roles.items():
+        if col in ready:
+            continue
         s = frame[col]
         if declared in ("integer", "number"):
-            if s.dtype.kind in "iufb":
-                values = pd.Series(s.to_numpy(dtype="float64", na_value=np.nan), index=frame.index)
-            else:
-                text = s.astype(object).where(s.notna(), None)
-                values = pd.to_numeric(pd.Series(text, dtype=object).str.strip(), errors="coerce").astype("float64")
-                bad = values.isna().to_numpy() & s.notna().to_numpy() & (s.astype(str).str.strip() != "").to_numpy()
-                if bad.any():
-                    failures.append(_failure_rows(frame, bad, col, RejectReason.NOT_A_NUMBER, id_col))
+            text = s.astype(object).where(s.notna(), None)
+            values = pd.to_numeric(pd.Series(text, dtype=object).str.strip(), errors="coerce").astype("float64")
+            bad = values.isna().to_numpy() & s.notna().to_numpy() & (s.astype(str).str.strip() != "").to_numpy()
+            if bad.any():
+                failures.append(_failure_rows(frame, bad, col, RejectReason.NOT_A_NUMBER, id_col))
             out[col] = values.to_numpy(dtype="float64", na_value=np.nan)
         else:
             text = s.astype(object)
             out[col] = np.where(pd.isna(text), None, text.astype(str)).astype(object)
-    typed = pd.DataFrame(out, index=frame.index)
+    typed = pd.concat([pd.DataFrame(block, columns=ready, index=frame.index), pd.DataFrame(out, index=frame.index)],
+                      axis=1)[list(roles)]
     rejects = pd.concat(failures, ignore_index=True) if failures else _empty_rejects()
     return typed, rejects
 
