@@ -134,13 +134,12 @@ def test_duckdb_baseline_computes_ratebook_sums(tiny, five_run):
 
     result, _ = tiny
     _, cells = five_run
-    five = [i for i in generate.INDICATORS if i.name in generate.FIVE]
-    spec = bench.contender_spec(result.path("persons").parent, five)
+    spec = bench.contender_spec(result.path("persons").parent, generate.FIVE_INDICATORS)
     sums = duckdb.connect().sql(contenders.build_sql(spec)).df()
     rolled = _by_district(result, sums)
     table = cells[(cells["geo_level"] == "district") & (cells["sex"] != "all") & (cells["age_group"] != "all")]
     checked = 0
-    for k, ind in enumerate(five):
+    for k, ind in enumerate(generate.FIVE_INDICATORS):
         mine = table[table["indicator"] == ind.name].set_index(["geo_code", "sex", "age_group"])
         theirs = rolled.reindex(mine.index).fillna(0)
         np.testing.assert_array_equal(mine["sample_size"], theirs[f"n_{k}"])

@@ -598,11 +598,22 @@ class _Witnesses:
         return lo, hi
 
 
+def _bound_pairs(q: Quantity) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """(published lower, published upper, hidden lower, hidden upper), each widened to hold the
+    true value: it is feasible, and float dust must not put it a hair outside."""
+    v = q.value
+    return (np.minimum(q.published_lower, v), np.maximum(q.published_upper, v),
+            np.minimum(q.hidden_lower, v), np.maximum(q.hidden_upper, v))
+
+
 def _bounds(q: Quantity, hidden: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    lower = np.where(hidden, q.hidden_lower, q.published_lower)
-    upper = np.where(hidden, q.hidden_upper, q.published_upper)
-    # the true value is feasible: guard against float dust putting it a hair outside
-    return np.minimum(lower, q.value), np.maximum(upper, q.value)
+    pl, pu, hl, hu = _bound_pairs(q)
+    return np.where(hidden, hl, pl), np.where(hidden, hu, pu)
+
+
+def _touching(M: sparse.csr_matrix, cols: np.ndarray) -> np.ndarray:
+    """The relations that hold any of the cells `cols`."""
+    return np.flatnonzero(np.asarray(abs(M[:, cols]).sum(axis=1)).ravel() > 0)
 
 
 def _free_components(relations: sparse.csr_matrix, free: np.ndarray) -> np.ndarray:
@@ -646,7 +657,7 @@ def _range(table: LinkedTable, q: Quantity, hidden: np.ndarray, cell: int, *, fr
     labels = _free_components(table.relations, free) if labels is None else labels  # callers may reuse
     cols = np.flatnonzero(labels == labels[cell])
     M = table.relations
-    rows = np.flatnonzero(np.asarray(abs(M[:, cols]).sum(axis=1)).ravel() > 0)
+    rows = _touching(M, cols)
     if not len(rows):
         return float(lower[cell]), float(upper[cell]), None, float(upper[cell] - lower[cell]), none
     sub = M[rows]
@@ -729,8 +740,7 @@ def _width_cut(table, quantity, cell, rows, nu_max, nu_min, hidden) -> tuple[_Cu
 
 def _cut_from(q: Quantity, cell: int, alpha: np.ndarray, beta: np.ndarray) -> _Cut:
     """width(z) <= Σ_j α_j u_j(z) − β_j l_j(z), written as constant + Σ gain·z."""
-    pl, pu = np.minimum(q.published_lower, q.value), np.maximum(q.published_upper, q.value)
-    hl, hu = np.minimum(q.hidden_lower, q.value), np.maximum(q.hidden_upper, q.value)
+    pl, pu, hl, hu = _bound_pairs(q)
     with np.errstate(invalid="ignore"):
         constant = float(np.where(alpha > 0, alpha * pu, 0.0).sum() - np.where(beta > 0, beta * pl, 0.0).sum())
         gain = np.where(alpha > 0, alpha * (hu - pu), 0.0) - np.where(beta > 0, beta * (hl - pl), 0.0)
@@ -750,8 +760,7 @@ def _relation_rows(table: LinkedTable, q: Quantity, fixed: np.ndarray, eligible:
     among its protected parts matters (its row implies the others'). Returns (rows × cells sparse
     matrix of gains clipped at the row's rhs, rhs)."""
     M = table.relations.tocsr()
-    pl, pu = np.minimum(q.published_lower, q.value), np.maximum(q.published_upper, q.value)
-    hl, hu = np.minimum(q.hidden_lower, q.value), np.maximum(q.hidden_upper, q.value)
+    pl, pu, hl, hu = _bound_pairs(q)
     need = np.where(fixed, q.required, 0.0)
     parts = M.multiply(M > 0).tocsr()
     totals = (-M).multiply(M < 0).tocsr()
@@ -842,10 +851,9 @@ def _find_witnesses(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets
             cols = idx[near]
             # and the published figures beside them, free within their rounding intervals: a
             # few cells are protected by that slack alone
-            touched = np.asarray(abs(M[np.flatnonzero(np.asarray(abs(M[:, cols]).sum(axis=1)).ravel() > 0)])
-                                 .sum(axis=0)).ravel() > 0
+            touched = np.asarray(abs(M[_touching(M, cols)]).sum(axis=0)).ravel() > 0
             cols = np.flatnonzero((np.isin(np.arange(table.n_cells), cols)) | (touched & ~hidden & (upper > lower)))
-        rows = np.flatnonzero(np.asarray(abs(M[:, cols]).sum(axis=1)).ravel() > 0)
+        rows = _touching(M, cols)
         M_h = M[rows][:, cols].tocsr()
         local = np.searchsorted(cols, todo)
         k = _WITNESS_COPIES
@@ -1064,7 +1072,7 @@ def _plain_cut(table: LinkedTable, hidden: np.ndarray, cell: int, q: Quantity) -
     M = table.relations
     labels = _free_components(M, hidden)
     comp = np.flatnonzero(labels == labels[cell]) if labels[cell] >= 0 else np.array([cell])
-    rows = np.flatnonzero(np.asarray(abs(M[:, comp]).sum(axis=1)).ravel() > 0)
+    rows = _touching(M, comp)
     near = np.asarray(abs(M[rows]).sum(axis=0)).ravel() > 0
     index = np.flatnonzero(near & ~hidden)
     return _Cut(cell=cell, quantity=q.name, required=float(q.required[cell]), constant=0.0, index=index,

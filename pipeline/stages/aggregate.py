@@ -240,10 +240,9 @@ class CellAccumulator:
             columns[:, 3:] = batch.replicate_weights
         _add_rows(self.everyone, batch.cell, columns, np.arange(n))
         for k in range(batch.in_base.shape[1]):
-            in_base = batch.in_base[:, k]
-            _add_rows(self.left_out[k], batch.cell, columns, np.flatnonzero(~in_base))
-            _add_rows(self.with_characteristic[k], batch.cell, columns,
-                      np.flatnonzero(batch.has_characteristic[:, k] & in_base))
+            _add_rows(self.left_out[k], batch.cell, columns, np.flatnonzero(~batch.in_base[:, k]))
+            # derive sets the characteristic only inside the base
+            _add_rows(self.with_characteristic[k], batch.cell, columns, np.flatnonzero(batch.has_characteristic[:, k]))
             self.item_nonresponse[k] += np.bincount(batch.cell[batch.item_nonresponse[:, k]], minlength=C)
 
     def finest_of(self, k: int) -> np.ndarray:

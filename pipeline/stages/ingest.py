@@ -320,7 +320,7 @@ def iter_batches(config, files: list[SourceFile], geography: Geography) -> Itera
             frame, type_rejects = _coerce_types(config, frame)
             rejects.append(type_rejects)
             clean = (not config.replicate_columns
-                     or _all_valid_replicate_weights(frame[config.replicate_columns].to_numpy(dtype=np.float64)))
+                     or bool(_valid_replicate_weight(frame[config.replicate_columns].to_numpy(dtype=np.float64)).all()))
             schema_failures = _schema_failures(without_replicates if clean else schema, frame,
                                                config.source.record_id)
             if len(type_rejects):  # text that is not a number is reported once, not again as missing
@@ -499,8 +499,7 @@ def build_row_schema(config, geography: Geography) -> pa.DataFrameSchema:
         columns[col] = pa.Column(nullable=kind != "key")
     for col in config.replicate_columns:
         columns[col] = pa.Column(nullable=True, checks=[
-            pa.Check(lambda s: finite(s) & (s >= 0), name=RejectReason.REPLICATE_WEIGHT_INVALID.value,
-                     ignore_na=False)])
+            pa.Check(_valid_replicate_weight, name=RejectReason.REPLICATE_WEIGHT_INVALID.value, ignore_na=False)])
     for name, var in config.source.variables.items():
         checks = []
         if var.type == "integer":
@@ -519,10 +518,10 @@ def build_row_schema(config, geography: Geography) -> pa.DataFrameSchema:
 _PANDERA_NULL_CHECK = "not_nullable"
 
 
-def _all_valid_replicate_weights(block: np.ndarray) -> bool:
-    """The replicate-weight rule of `build_row_schema` (finite and >= 0), over all of them at once."""
+def _valid_replicate_weight(values):
+    """The replicate-weight rule: finite and >= 0 (a column in the schema, or all of them at once)."""
     with np.errstate(invalid="ignore"):
-        return bool(np.isfinite(block).all() and (block >= 0).all())
+        return np.isfinite(values) & (values >= 0)
 
 
 def _schema_failures(schema: pa.DataFrameSchema, frame: pd.DataFrame, id_column: str) -> pd.DataFrame:

@@ -123,8 +123,8 @@ def protect_release(frame: pd.DataFrame, severity: np.ndarray, reasons: list[lis
     work = (severity >= SEVERITY[Status.SUPPRESSED]) | primary.cells
     order = sorted(range(len(blocks)), key=lambda k: -int(work[blocks[k]].sum()))
     with ThreadPoolExecutor(max_workers=min(len(blocks), os.cpu_count() or 1) or 1) as pool:
-        done = dict(zip(order, pool.map(protect_indicator, [blocks[k] for k in order])))
-    results = [done[k] for k in range(len(blocks))]
+        started_first = {k: pool.submit(protect_indicator, blocks[k]) for k in order}
+        results = [started_first[k].result() for k in range(len(blocks))]
 
     per_indicator, failures = {}, []
     complementary = np.zeros(len(f), dtype=bool)

@@ -14,9 +14,8 @@ after one untimed read of the input to warm the page cache:
 3. analyst (S only): pandas, one group-by per weight;
 4. ratebook: the whole run (30 indicators) — and at M also with 5 indicators;
 
-and, for context, read_prebuf: the read floor with pyarrow's default pre-buffering, as ratebook's
-ingest opens the file. The code measured is a copy of pipeline/ taken at the start (see
-`snapshot_code`; --commit REF measures a commit, --live the working tree as it changes).
+The code measured is a copy of pipeline/ taken at the start (see `snapshot_code`; --commit REF
+measures a commit, --live the working tree as it changes).
 
 Wall time is measured around the child; peak memory is the child's own ru_maxrss from
 os.wait4 (not RUSAGE_CHILDREN, whose maximum mixes all children). The table, the target ratios
@@ -178,7 +177,7 @@ def parse_repeats(text: str | None) -> dict[str, int]:
             key, value = part.split("=", 1)
             repeats[key.strip().upper()] = int(value)
         else:  # one number for every size
-            repeats = {k: int(part) for k in repeats} | {"*": int(part)}
+            repeats = {"*": int(part)}
     return repeats
 
 
@@ -228,28 +227,27 @@ def warm_page_cache(path: Path) -> None:
 
 
 def run_size(label: str, rows: int, *, seed: int, repeats: int, timeout: float | None, code: Path) -> dict:
-    from pipeline.config import load_config
-    from pipeline.stages.ingest import needed_columns
     from tests.benchmarks import generate
 
     gen = ensure_input(label, rows, seed, timeout=timeout, code=code)
     folder = Path(gen["folder"])
     config_30 = folder / generate.FILES["config_30"]
     config_5 = folder / generate.FILES["config_5"]
-    loaded = load_config(config_30)
-    columns = needed_columns(loaded)
+    # the columns the measured code reads, asked of the measured code itself (the snapshot)
+    columns, batch_rows = json.loads(subprocess.run(
+        [sys.executable, "-c", "import json, sys; from pipeline.config import load_config; "
+         "from pipeline.stages.ingest import needed_columns; c = load_config(sys.argv[1]); "
+         "print(json.dumps([needed_columns(c), c.source.batch_rows]))", str(config_30)],
+        cwd=code, capture_output=True, text=True, check=True).stdout)
     spec_path = folder / "contender-spec.json"
     spec_path.write_text(json.dumps(contender_spec(folder, generate.INDICATORS), indent=1))
     py = sys.executable
     contenders = {
         "read_floor": [py, "-m", "tests.benchmarks.contenders", "read_floor", "--input",
                        str(folder / generate.FILES["persons"]), "--columns", ",".join(columns),
-                       "--batch-rows", str(loaded.source.batch_rows)],
+                       "--batch-rows", str(batch_rows)],
         "duckdb": [py, "-m", "tests.benchmarks.contenders", "duckdb", "--spec", str(spec_path)],
     }
-    # context, not a target: the same read as ratebook's ingest opens the file (pyarrow's default
-    # pre_buffer=True), to show what that reader costs in time and memory
-    contenders["read_prebuf"] = contenders["read_floor"] + ["--pre-buffer"]
     if label == "S":
         contenders["analyst"] = [py, "-m", "tests.benchmarks.contenders", "analyst", "--spec", str(spec_path)]
     contenders["ratebook"] = [py, "-m", "tests.benchmarks.contenders", "ratebook", "--config", str(config_30),
@@ -349,7 +347,7 @@ def targets(results: dict) -> list[dict]:
     for size in ("S", "M"):
         peak = results.get(size, {}).get("contenders", {}).get("ratebook", {}).get("peak_rss_mib")
         add(f"(info) ratebook peak memory at {size} (GiB)", None if peak is None else peak / GIB, 2.0, "max",
-            "cell arrays do not grow with records; the reader's pre-buffer does (read_prebuf)")
+            "cell arrays do not grow with records")
     return rows
 
 
@@ -423,6 +421,14 @@ def report(results: dict, target_rows: list[dict]) -> str:
     return "\n".join(lines)
 
 
+def _git(*args: str) -> str | None:
+    """A read-only git query in the repository, or None."""
+    try:
+        return subprocess.run(["git", *args], cwd=ROOT, capture_output=True, text=True, timeout=10).stdout.rstrip()
+    except (OSError, subprocess.SubprocessError):
+        return None
+
+
 def machine_info() -> dict:
     def first(path: str, key: str) -> str | None:
         try:
@@ -439,12 +445,6 @@ def machine_info() -> dict:
         except metadata.PackageNotFoundError:
             return None
 
-    def git(*args: str) -> str | None:  # read-only queries
-        try:
-            return subprocess.run(["git", *args], cwd=ROOT, capture_output=True, text=True, timeout=10).stdout.rstrip()
-        except (OSError, subprocess.SubprocessError):
-            return None
-
     mem_kib = first("/proc/meminfo", "MemTotal")
     return {
         "cpu_count": os.cpu_count(),
@@ -455,8 +455,8 @@ def machine_info() -> dict:
         "platform": platform.platform(),
         "python": platform.python_version(),
         "versions": {d: version(d) for d in ("ratebook", "numpy", "pandas", "pyarrow", "duckdb", "scipy", "pandera")},
-        "git_commit": git("rev-parse", "HEAD"),
-        "git_uncommitted": (git("status", "--porcelain") or "").splitlines(),
+        "git_commit": _git("rev-parse", "HEAD"),
+        "git_uncommitted": (_git("status", "--porcelain") or "").splitlines(),
         "pipeline_digest": pipeline_digest(),
     }
 
@@ -496,7 +496,7 @@ def main(argv: list[str] | None = None) -> int:
     print(text, flush=True)
 
     info["load_average_end"] = os.getloadavg()
-    info["git_commit_end"] = machine_info()["git_commit"]
+    info["git_commit_end"] = _git("rev-parse", "HEAD")
     info["pipeline_digest_end"] = pipeline_digest()  # of the working tree: others may have edited it
     document = {"started": started.isoformat(timespec="seconds"),
                 "finished": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),

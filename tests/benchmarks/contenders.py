@@ -1,6 +1,6 @@
 """The contenders of the benchmark, each run by `bench.py` as a whole process of its own:
 
-    python -m tests.benchmarks.contenders read_floor --input F --columns a,b,... --batch-rows N [--pre-buffer]
+    python -m tests.benchmarks.contenders read_floor --input F --columns a,b,... --batch-rows N
     python -m tests.benchmarks.contenders duckdb     --spec SPEC.json
     python -m tests.benchmarks.contenders analyst    --spec SPEC.json [--out RESULT.parquet]
     python -m tests.benchmarks.contenders ratebook   --config CONFIG --release-id ID
@@ -72,13 +72,13 @@ def read_floor(args) -> dict:
     columns = args.columns.split(",")
     rows = 0
     # The same batch size as the ratebook run; batches are decoded and dropped, nothing else.
-    # pre_buffer off by default: with it on, pyarrow caches every selected column chunk of the
+    # pre_buffer off, as ratebook reads: with it on, pyarrow caches every selected column chunk of the
     # whole file before the first batch (about the file's size in memory: 4 GiB at L), and it is
     # no faster; a floor for a streaming reader should not pay for that.
-    reader = pq.ParquetFile(args.input, pre_buffer=args.pre_buffer)
+    reader = pq.ParquetFile(args.input, pre_buffer=False)
     for batch in reader.iter_batches(batch_size=args.batch_rows, columns=columns):
         rows += batch.num_rows
-    return {"rows": rows, "columns": len(columns), "pre_buffer": args.pre_buffer}
+    return {"rows": rows, "columns": len(columns)}
 
 
 def duckdb_baseline(args) -> dict:
@@ -204,7 +204,6 @@ def ratebook(args) -> dict:
             "statuses": summary.statuses, "run_seconds": summary.seconds,
             "stage_seconds": {k: round(v, 3) for k, v in stages.items()},
             "runner_stage_seconds": {k: round(v, 3) for k, v in s.items()},
-            "accumulate_seconds": round(timers["accumulate"], 3),
             "process_seconds": round(time.perf_counter() - started, 3),
             "memory_marks": marks}
 
@@ -216,7 +215,6 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--input", required=True)
     p.add_argument("--columns", required=True)
     p.add_argument("--batch-rows", type=int, default=65_536)
-    p.add_argument("--pre-buffer", action="store_true", help="pyarrow's default (on) instead of off")
     p = sub.add_parser("duckdb")
     p.add_argument("--spec", required=True)
     p = sub.add_parser("analyst")

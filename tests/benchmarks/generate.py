@@ -188,6 +188,7 @@ INDICATORS: tuple[BenchIndicator, ...] = (
 )
 # The 5-indicator config: a household item, a rare one, universes and a universe-free person item.
 FIVE = ("no_internet", "smoker", "employed", "chronic_condition", "addiction_treatment")
+FIVE_INDICATORS = tuple(i for i in INDICATORS if i.name in FIVE)
 assert len(INDICATORS) == 30 and len({i.name for i in INDICATORS}) == 30
 assert set(FIVE) <= {i.name for i in INDICATORS}
 
@@ -428,8 +429,9 @@ def _chunk(geo: Geography, lay: _Layout, factors_t: np.ndarray, seed: int, index
         if ind.max_age is not None:
             in_universe &= age <= ind.max_age
         columns[ind.name] = pa.array(values, mask=~in_universe | lost)
+    row = cluster % REPLICATES  # each cluster's row of the factor table
     for r in range(REPLICATES):
-        columns[f"rw{r + 1}"] = pa.array(wt * factors_t[r][cluster % REPLICATES])
+        columns[f"rw{r + 1}"] = pa.array(wt * factors_t[r][row])
     return pa.Table.from_arrays([columns[f.name] for f in schema], schema=schema)
 
 
@@ -497,8 +499,7 @@ def write_configs(out_dir, *, rows: int, seed: int, demo_config: Path = DEMO_CON
     data stay."""
     header = (f"# Benchmark config written by tests/benchmarks/generate.py (rows={rows}, seed={seed}).\n"
               "# Fictional data; paths are relative to this file's folder. Rewritten on every benchmark run.\n")
-    five = tuple(ind for ind in INDICATORS if ind.name in FIVE)
-    for key, indicators, name in (("config_30", INDICATORS, "bench-30"), ("config_5", five, "bench-5")):
+    for key, indicators, name in (("config_30", INDICATORS, "bench-30"), ("config_5", FIVE_INDICATORS, "bench-5")):
         settings = bench_config(indicators, name=name, demo_config=demo_config)
         (Path(out_dir) / FILES[key]).write_text(header + yaml.safe_dump(settings, sort_keys=False,
                                                                          allow_unicode=True))
