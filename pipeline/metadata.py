@@ -90,7 +90,7 @@ def disclosure_text(config) -> dict:
                             f"{respondents} wide for the sample size (common practice; set by the office).",
         "audit": "Audited: the weighted count with the characteristic, the weighted count without it (base − "
                  "count) and the sample size, each over its own additive table. Before publication, linear "
-                 "programs (scipy.optimize.linprog) take the reader's view: every "
+                 "programs (HiGHS) take the reader's view: every "
                  "relation holds, published counts lie within their rounding intervals (narrowed by the "
                  "printed estimate), sample sizes are exact, withheld figures are at least 0 and at most the "
                  "grand total, and what reason codes say about a withheld cell's sample size holds. For every "

@@ -53,7 +53,7 @@ of its range), cheapest proof first:
    linked to it only): proof, or a cut valid for the full reader model when even its dual bound
    falls short;
 4. per cell, the exact min and max over every cell, published figures free within their rounding
-   intervals (scipy.optimize.linprog): the final word, with its cut.
+   intervals (HiGHS, `linear_program`): the final word, with its cut.
 Proofs are kept and reused while the cells they move keep their bounds; the values of the proofs
 are the audit's ranges (`lower`, `upper`): a reader's full range contains them.
 """
@@ -67,10 +67,11 @@ from itertools import combinations
 
 import numpy as np
 from scipy import sparse
-from scipy.optimize import Bounds, LinearConstraint, linprog, milp
+from scipy.optimize import Bounds, LinearConstraint, milp
 from scipy.sparse.csgraph import connected_components
 
 from pipeline.methods import lookup_member
+from pipeline.methods.linear_program import LinearProgram
 
 __all__ = [
     "CostKind",
@@ -632,67 +633,89 @@ def _free_components(relations: sparse.csr_matrix, free: np.ndarray) -> np.ndarr
 
 def feasible_range(table: LinkedTable, quantity: Quantity, hidden: np.ndarray, cell: int):
     """Exact min and max of one cell's value given everything published: two linear programs
-    (scipy.optimize.linprog, HiGHS) over the cells linked to it, published figures free within
-    their intervals. Returns (lower, upper, cut, points): the cut the duals give (None when the
-    range is unbounded or the duals give no usable bound) and the two optimal points as
-    deviations from the true values (witnesses for later patterns)."""
+    (HiGHS) over the cells linked to it, published figures free within their intervals. Returns
+    (lower, upper, cut, points): the cut the duals give (None when the range is unbounded or the
+    duals give no usable bound) and the two optimal points as deviations from the true values
+    (witnesses for later patterns)."""
     hidden = np.asarray(hidden, dtype=bool)
     lower, upper = _bounds(quantity, hidden)
-    lo, hi, cut, _bound, points = _range(table, quantity, hidden, cell, free=upper > lower)
+    lo, hi, cut, _bound, points = _Ranges(table, quantity, hidden, free=upper > lower).of(cell)
     return lo, hi, cut, points
 
 
-def _range(table: LinkedTable, q: Quantity, hidden: np.ndarray, cell: int, *, free: np.ndarray,
-           labels: np.ndarray | None = None):
-    """Min and max of `cell` over the cells in its linked component among `free` (the others held
-    at their true values), with the cut from the duals and the cut's value at this pattern (an
-    upper bound on the width under the full reader model, whatever `free` was). With `free` =
-    every cell whose bounds leave room this is the exact range; with `free` = the hidden cells it
-    is the range when published figures are taken at face value (smaller, often much smaller
-    programs: a lower bound on the width, with a valid cut)."""
-    lower, upper = _bounds(q, hidden)
-    none = np.zeros((0, table.n_cells))
-    if not free[cell]:
-        return float(lower[cell]), float(upper[cell]), None, 0.0, none
-    labels = _free_components(table.relations, free) if labels is None else labels  # callers may reuse
-    cols = np.flatnonzero(labels == labels[cell])
-    M = table.relations
-    rows = _touching(M, cols)
-    if not len(rows):
-        return float(lower[cell]), float(upper[cell]), None, float(upper[cell] - lower[cell]), none
-    sub = M[rows]
-    A = sub[:, cols].tocsr()
-    # in deviations d = y − true value the true point is d = 0, a vertex of the split form
-    # d = d⁺ − d⁻ (both >= 0), so HiGHS starts feasible and needs only the pivots that move the
-    # cell; the right-hand side is the float residual of the true values (≈ 0)
-    a = q.value[cols]
-    b = -(sub @ q.value)
-    lo, hi = np.minimum(lower[cols] - a, 0.0), np.maximum(upper[cols] - a, 0.0)
-    k = len(cols)
-    split = sparse.hstack([A, -A], format="csr")
-    bounds = np.column_stack([np.zeros(2 * k), np.concatenate([hi, -lo])])
-    target = int(np.searchsorted(cols, cell))
-    found, points = [], []
-    for sign in (-1.0, 1.0):  # maximise, then minimise
-        c = np.zeros(2 * k)
-        c[target], c[k + target] = sign, -sign
-        res = linprog(c, A_eq=split, b_eq=b, bounds=bounds, method="highs", options={"presolve": False})
-        if res.status == 3:  # unbounded: the value can grow without limit
-            found.append((np.inf if sign < 0 else -np.inf, None))
-            continue
-        if res.status != 0:
-            raise RuntimeError(f"audit linear program for cell {cell} ({q.name}) failed: {res.message}")
-        d = res.x[:k] - res.x[k:]
-        point = np.zeros(table.n_cells)
-        point[cols] = d
-        points.append(point)
-        found.append((float(q.value[cell] + d[target]), np.asarray(res.eqlin.marginals)))
-    (hi_v, nu_max), (lo_v, nu_min) = found
-    points = np.stack(points) if points else none
-    if not np.isfinite(hi_v) or nu_max is None or nu_min is None:
-        return lo_v, hi_v, None, np.inf, points
-    cut, bound = _width_cut(table, q, cell, rows, nu_max, nu_min, hidden)
-    return lo_v, hi_v, cut, bound, points
+class _Ranges:
+    """Min and max of cells over their linked components among `free` (the other cells held at
+    their true values), with the cut from the duals and the cut's value at this pattern (an upper
+    bound on the width under the full reader model, whatever `free` was). With `free` = every cell
+    whose bounds leave room this is the exact range; with `free` = the hidden cells it is the range
+    when published figures are taken at face value (smaller, often much smaller programs: a lower
+    bound on the width, with a valid cut).
+
+    One program per component, kept open: the cells of a component are asked one after another,
+    and only the objective changes between them (see `linear_program`)."""
+
+    def __init__(self, table: LinkedTable, q: Quantity, hidden: np.ndarray, *, free: np.ndarray):
+        self.table, self.q, self.hidden, self.free = table, q, hidden, free
+        self.lower, self.upper = _bounds(q, hidden)
+        self._labels: np.ndarray | None = None
+        self._programs: dict[int, tuple] = {}
+
+    def _program(self, cell: int):
+        if self._labels is None:
+            self._labels = _free_components(self.table.relations, self.free)
+        label = int(self._labels[cell])
+        if label not in self._programs:
+            M, q = self.table.relations, self.q
+            cols = np.flatnonzero(self._labels == label)
+            rows = _touching(M, cols)
+            program = None
+            if len(rows):
+                sub = M[rows]
+                A = sub[:, cols]
+                # in deviations d = y − true value the true point is d = 0, a vertex of the split
+                # form d = d⁺ − d⁻ (both >= 0): the first solve starts feasible; the right-hand
+                # side is the float residual of the true values (≈ 0)
+                a = q.value[cols]
+                b = -(sub @ q.value)
+                lo = np.minimum(self.lower[cols] - a, 0.0)
+                hi = np.maximum(self.upper[cols] - a, 0.0)
+                program = LinearProgram(sparse.hstack([A, -A], format="csc"), b, b, np.zeros(2 * len(cols)),
+                                        np.concatenate([hi, -lo]), warm=True)
+            self._programs[label] = (cols, rows, program)
+        return self._programs[label]
+
+    def of(self, cell: int):
+        """(lower, upper, cut, bound, points) for one cell."""
+        table, q, lower, upper = self.table, self.q, self.lower, self.upper
+        none = np.zeros((0, table.n_cells))
+        if not self.free[cell]:
+            return float(lower[cell]), float(upper[cell]), None, 0.0, none
+        cols, rows, program = self._program(cell)
+        if program is None:
+            return float(lower[cell]), float(upper[cell]), None, float(upper[cell] - lower[cell]), none
+        k = len(cols)
+        target = int(np.searchsorted(cols, cell))
+        found, points = [], []
+        for sign in (-1.0, 1.0):  # maximise, then minimise
+            c = np.zeros(2 * k)
+            c[target], c[k + target] = sign, -sign
+            solution = program.minimise(c)
+            if solution.status in ("unbounded", "unbounded or infeasible"):  # d = 0 is feasible: unbounded
+                found.append((np.inf if sign < 0 else -np.inf, None))
+                continue
+            if not solution.optimal:
+                raise RuntimeError(f"audit linear program for cell {cell} ({q.name}) failed: {solution.status}")
+            d = solution.x[:k] - solution.x[k:]
+            point = np.zeros(table.n_cells)
+            point[cols] = d
+            points.append(point)
+            found.append((float(q.value[cell] + d[target]), solution.row_dual))
+        (hi_v, nu_max), (lo_v, nu_min) = found
+        points = np.stack(points) if points else none
+        if not np.isfinite(hi_v) or nu_max is None or nu_min is None:
+            return lo_v, hi_v, None, np.inf, points
+        cut, bound = _width_cut(table, q, cell, rows, nu_max, nu_min, self.hidden)
+        return lo_v, hi_v, cut, bound, points
 
 
 def _width_cut(table, quantity, cell, rows, nu_max, nu_min, hidden) -> tuple[_Cut | None, float]:
@@ -812,11 +835,13 @@ def _witness_round(M_h: sparse.csr_matrix, low: np.ndarray, high: np.ndarray, ta
     c = np.concatenate([np.zeros(copies * h), -1.0 / required])
     lo = np.concatenate([np.tile(low, copies), np.zeros(m)])
     hi = np.concatenate([np.tile(high, copies), required])
-    res = linprog(c, A_ub=ub_rows, b_ub=np.zeros(m), A_eq=eq, b_eq=np.zeros(eq.shape[0]),
-                  bounds=np.column_stack([lo, hi]), method="highs", options={"presolve": False})
-    if res.status != 0:
+    n_eq = eq.shape[0]
+    program = LinearProgram(sparse.vstack([eq, ub_rows]), np.concatenate([np.zeros(n_eq), np.full(m, -np.inf)]),
+                            np.zeros(n_eq + m), lo, hi)
+    solution = program.minimise(c)
+    if not solution.optimal:
         return None
-    return res.x[: copies * h].reshape(copies, h)
+    return solution.x[: copies * h].reshape(copies, h)
 
 
 def _find_witnesses(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets: np.ndarray,
@@ -969,14 +994,12 @@ def audit_quantity(table: LinkedTable, quantity: Quantity, hidden, *, witnesses:
         if (~proven[linked]).any():  # then neighbourhoods, with the published slack beside them
             _find_witnesses(table, q, hidden, linked, witnesses, proven, rng, radius=_NEIGHBOURHOOD)
         b_free = b_hi > b_lo
-        face_value = exact_model = None  # component labels, computed once for all the cells left
+        face_value = _Ranges(table, q, hidden, free=hidden & b_free)
+        exact_model = _Ranges(table, q, hidden, free=b_free)
         for i in linked[~proven[linked]]:
-            if face_value is None:
-                face_value = _free_components(table.relations, hidden & b_free)
             # published figures at face value first: a small program over the hidden cells linked
             # to i; its points are witnesses, and its duals bound the full reader's width
-            lo_i, hi_i, cut, bound, points = _range(table, q, hidden, int(i), free=hidden & b_free,
-                                                    labels=face_value)
+            lo_i, hi_i, cut, bound, points = face_value.of(int(i))
             witnesses.add(points, relations=table.relations)
             if _reaches(hi_i - lo_i, q.required[i]):
                 proven[i] = True
@@ -985,9 +1008,7 @@ def audit_quantity(table: LinkedTable, quantity: Quantity, hidden, *, witnesses:
                 lower[i], upper[i] = lo_i, hi_i  # short even with the rounding slack: a cut
                 cuts.append(cut)
                 continue
-            if exact_model is None:
-                exact_model = _free_components(table.relations, b_free)
-            lo_i, hi_i, cut, bound, points = _range(table, q, hidden, int(i), free=b_free, labels=exact_model)
+            lo_i, hi_i, cut, bound, points = exact_model.of(int(i))
             witnesses.add(points, relations=table.relations)
             lower[i], upper[i], exact[i] = lo_i, hi_i, True
             if not _reaches(hi_i - lo_i, q.required[i]):

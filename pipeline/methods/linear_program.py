@@ -1,0 +1,97 @@
+"""A linear program held open between solves, for the audit's many programs over one table.
+
+    program = LinearProgram(A, row_lower, row_upper, col_lower, col_upper, warm=True)
+    solution = program.minimise(cost)      # again and again with other costs
+
+min c·x subject to row_lower <= A x <= row_upper and col_lower <= x <= col_upper, solved by HiGHS
+(Huangfu & Hall 2018, Math. Prog. Comp. 10:119) through its Python binding, highspy. The audit
+asks for the min and max of one cell after another over the same linked component: only the
+objective changes, so the last optimal basis stays primal feasible and the primal simplex goes on
+from it in a few pivots (`warm=True`), where scipy.optimize.linprog would build and solve each
+program from scratch. One-off programs (`warm=False`) use HiGHS's default (dual) simplex.
+
+The raw binding (`highspy._Highs`) is used rather than `highspy.Highs`: the latter registers a
+Python callback on every instance, which prints a banner on standard output and calls back into
+Python during solves.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import highspy
+import numpy as np
+from scipy import sparse
+
+__all__ = ["LinearProgram", "Solution"]
+
+# HiGHS's simplex_strategy option: 4 = primal simplex (kSimplexStrategyPrimal)
+_PRIMAL_SIMPLEX = 4
+
+
+@dataclass(frozen=True)
+class Solution:
+    """status: 'optimal', 'unbounded', 'unbounded or infeasible' (HiGHS stopped without telling
+    which; a caller that knows a feasible point knows it is unbounded) or HiGHS's words for anything
+    else; x and row_dual (the
+    multipliers of the rows, HiGHS's sign convention) only when optimal."""
+
+    status: str
+    x: np.ndarray | None = None
+    row_dual: np.ndarray | None = None
+
+    @property
+    def optimal(self) -> bool:
+        return self.status == "optimal"
+
+
+class LinearProgram:
+    """One HiGHS model kept between solves (not thread-safe: one per thread)."""
+
+    def __init__(self, A, row_lower, row_upper, col_lower, col_upper, *, warm: bool = False):
+        A = sparse.csc_matrix(A, dtype=np.float64)
+        n_rows, n_cols = A.shape
+        arrays = {"row_lower": (row_lower, n_rows), "row_upper": (row_upper, n_rows),
+                  "col_lower": (col_lower, n_cols), "col_upper": (col_upper, n_cols)}
+        for name, (values, size) in arrays.items():
+            if np.shape(values) != (size,):
+                raise ValueError(f"{name} has shape {np.shape(values)}; the matrix {A.shape} needs ({size},)")
+        self.n_cols = n_cols
+        lp = highspy.HighsLp()
+        lp.num_col_, lp.num_row_ = n_cols, n_rows
+        lp.col_cost_ = np.zeros(n_cols)
+        lp.col_lower_ = np.asarray(col_lower, dtype=np.float64)
+        lp.col_upper_ = np.asarray(col_upper, dtype=np.float64)
+        lp.row_lower_ = np.asarray(row_lower, dtype=np.float64)
+        lp.row_upper_ = np.asarray(row_upper, dtype=np.float64)
+        lp.a_matrix_.format_ = highspy.MatrixFormat.kColwise
+        lp.a_matrix_.num_col_, lp.a_matrix_.num_row_ = n_cols, n_rows
+        lp.a_matrix_.start_ = A.indptr.astype(np.int32)
+        lp.a_matrix_.index_ = A.indices.astype(np.int32)
+        lp.a_matrix_.value_ = A.data
+        self._highs = highspy._Highs()
+        self._highs.setOptionValue("output_flag", False)
+        # presolve would rebuild the program on every solve and lose the basis between them
+        self._highs.setOptionValue("presolve", "off")
+        if warm:
+            self._highs.setOptionValue("simplex_strategy", _PRIMAL_SIMPLEX)
+        if self._highs.passModel(lp) == highspy.HighsStatus.kError:
+            raise ValueError("HiGHS refused the linear program (check the bounds: lower <= upper, no NaN)")
+        self._all = np.arange(n_cols, dtype=np.int32)
+
+    def minimise(self, cost) -> Solution:
+        cost = np.asarray(cost, dtype=np.float64)
+        if cost.shape != (self.n_cols,):
+            raise ValueError(f"cost has shape {cost.shape}; the program has {self.n_cols} columns")
+        h = self._highs
+        h.changeColsCost(self.n_cols, self._all, cost)
+        h.run()
+        status = h.getModelStatus()
+        if status == highspy.HighsModelStatus.kOptimal:
+            solution = h.getSolution()
+            return Solution("optimal", np.array(solution.col_value), np.array(solution.row_dual))
+        if status == highspy.HighsModelStatus.kUnbounded:
+            return Solution("unbounded")
+        if status == highspy.HighsModelStatus.kUnboundedOrInfeasible:
+            return Solution("unbounded or infeasible")  # the caller may know a feasible point
+        return Solution(h.modelStatusToString(status))
