@@ -1261,24 +1261,27 @@ def _solve_milp(table, primary, fixed, eligible, cost, capacity, cuts, time_limi
         vals.append(np.ones(int(pick.sum())))
         lbs += [1.0] * len(used)
         k += len(used)
-    # no fixed cell: a chosen cell needs another chosen one beside it, Σ_{l != j} z_l − z_j >= 0
+    # no fixed cell: a chosen cell needs another chosen one beside it. Written with one continuous
+    # y_r in [0, 1] per relation, "something in r is chosen": z_j <= y_r for each member and
+    # Σ z_l >= 2 y_r (z integer forces y_r = 1 and then two members): 3 entries per member where
+    # the direct rows Σ_{l != j} z_l >= z_j need one per pair, which at national scale made the
+    # program several times larger than everything else in it
     pick = (n_fixed[rel] == 0) & choosable
     r_sel, c_sel = rel[pick], cell[pick]
-    order = np.argsort(r_sel, kind="stable")
-    r_sel, c_sel = r_sel[order], c_sel[order]
-    starts = np.flatnonzero(np.r_[True, r_sel[1:] != r_sel[:-1]])
-    sizes = np.diff(np.r_[starts, len(r_sel)])
-    for size in np.unique(sizes):
-        if size < 1:
-            continue
-        groups = c_sel[starts[sizes == size][:, None] + np.arange(size)[None, :]]  # (G, size)
-        G = len(groups)
-        coef = np.ones((size, size)) - 2 * np.eye(size)                         # row j: −1 at j
-        rows.append(np.repeat(np.arange(k, k + G * size), size))
-        cols.append(pos[np.repeat(groups, size, axis=0).ravel()])
-        vals.append(np.tile(coef.ravel(), G))
-        lbs += [0.0] * (G * size)
-        k += G * size
+    used, group = np.unique(r_sel, return_inverse=True)
+    n_groups = len(used)
+    y = len(free) + group                                                   # the column of y_r
+    member_rows = np.arange(k, k + len(c_sel))
+    rows += [member_rows, member_rows]
+    cols += [y, pos[c_sel]]
+    vals += [np.ones(len(c_sel)), -np.ones(len(c_sel))]                     # y_r − z_j >= 0
+    lbs += [0.0] * len(c_sel)
+    k += len(c_sel)
+    rows += [k + group, k + np.arange(n_groups)]
+    cols += [pos[c_sel], len(free) + np.arange(n_groups)]
+    vals += [np.ones(len(c_sel)), np.full(n_groups, -2.0)]                  # Σ z_l − 2 y_r >= 0
+    lbs += [0.0] * n_groups
+    k += n_groups
     # (b) capacity: single relations first, then the cuts the audit found
     for cells, gains, rhs in capacity:
         rhs = rhs - float(gains[fixed[cells]].sum())  # cells kept hidden from earlier rounds
@@ -1310,15 +1313,17 @@ def _solve_milp(table, primary, fixed, eligible, cost, capacity, cuts, time_limi
     constraints = []
     if k:
         A = sparse.csr_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))),
-                              shape=(k, len(free)))
+                              shape=(k, len(free) + n_groups))
         constraints = [LinearConstraint(A, np.array(lbs), np.inf)]
     if not len(free):
         return fixed.copy(), "optimal"
-    res = milp(cost[free], integrality=np.ones(len(free)), bounds=Bounds(0, 1), constraints=constraints,
+    integrality = np.r_[np.ones(len(free)), np.zeros(n_groups)]
+    res = milp(np.r_[cost[free], np.zeros(n_groups)], integrality=integrality, bounds=Bounds(0, 1),
+               constraints=constraints,
                options={"time_limit": max(float(time_limit), 0.01), "mip_rel_gap": 1e-6})
     if res.status == 0:
         hidden = fixed.copy()
-        hidden[free[np.round(res.x) > 0.5]] = True
+        hidden[free[np.round(res.x[:len(free)]) > 0.5]] = True
         return hidden, "optimal"
     if res.status == 1:
         return None, "time limit reached"
