@@ -103,6 +103,10 @@ _WITNESS_ROUNDS = 8
 # _NEIGHBOURHOOD relations of them (three steps reach the far corner of a cube of cells).
 _FEW = 250
 _NEIGHBOURHOOD = 3
+# Exact ranges: the rounding slack of the published figures within this many relations of a
+# cell's linked hidden cells first (a small program; usually the exact range already, which the
+# duals then confirm), the whole table only when that falls short.
+_RINGS = 2
 # A witness round costs about as much as a handful of single-cell programs: rounds go on while
 # each proves at least this many cells (and the share of the rest given to the search).
 _MIN_GAIN = 4
@@ -651,11 +655,18 @@ class _Ranges:
     when published figures are taken at face value (smaller, often much smaller programs: a lower
     bound on the width, with a valid cut).
 
+    `widen`: cells added to each component, those of them in the relations that hold it (with
+    `free` = the hidden cells and `widen` = the published cells with rounding room: the published
+    figures beside a component free within their intervals, the rest at face value; a much smaller
+    program than the exact one, and as tight wherever the rounding slack further away does not
+    matter).
+
     One program per component, kept open: the cells of a component are asked one after another,
     and only the objective changes between them (see `linear_program`)."""
 
-    def __init__(self, table: LinkedTable, q: Quantity, hidden: np.ndarray, *, free: np.ndarray):
-        self.table, self.q, self.hidden, self.free = table, q, hidden, free
+    def __init__(self, table: LinkedTable, q: Quantity, hidden: np.ndarray, *, free: np.ndarray,
+                 widen: np.ndarray | None = None):
+        self.table, self.q, self.hidden, self.free, self.widen = table, q, hidden, free, widen
         self.lower, self.upper = _bounds(q, hidden)
         self._labels: np.ndarray | None = None
         self._programs: dict[int, tuple] = {}
@@ -667,6 +678,12 @@ class _Ranges:
         if label not in self._programs:
             M, q = self.table.relations, self.q
             cols = np.flatnonzero(self._labels == label)
+            if self.widen is not None:
+                inside = self._labels == label
+                for _ring in range(_RINGS):
+                    beside = np.asarray(abs(M[_touching(M, cols)]).sum(axis=0)).ravel() > 0
+                    inside |= beside & self.widen
+                    cols = np.flatnonzero(inside)
             rows = _touching(M, cols)
             program = None
             if len(rows):
@@ -994,26 +1011,33 @@ def audit_quantity(table: LinkedTable, quantity: Quantity, hidden, *, witnesses:
         if (~proven[linked]).any():  # then neighbourhoods, with the published slack beside them
             _find_witnesses(table, q, hidden, linked, witnesses, proven, rng, radius=_NEIGHBOURHOOD)
         b_free = b_hi > b_lo
-        face_value = _Ranges(table, q, hidden, free=hidden & b_free)
-        exact_model = _Ranges(table, q, hidden, free=b_free)
+        # per cell, published figures at face value first (a small program over the hidden cells
+        # linked to it), then with the rounding slack of the published figures within _RINGS
+        # relations of those hidden cells, then all of it. Each program's points are witnesses and
+        # its duals bound the full reader's width: a bound short of the requirement ends the search
+        # with a cut, and a width that meets the bound is the exact range
+        models = [_Ranges(table, q, hidden, free=hidden & b_free),
+                  _Ranges(table, q, hidden, free=hidden & b_free, widen=~hidden & b_free),
+                  _Ranges(table, q, hidden, free=b_free)]
         for i in linked[~proven[linked]]:
-            # published figures at face value first: a small program over the hidden cells linked
-            # to i; its points are witnesses, and its duals bound the full reader's width
-            lo_i, hi_i, cut, bound, points = face_value.of(int(i))
-            witnesses.add(points, relations=table.relations)
-            if _reaches(hi_i - lo_i, q.required[i]):
-                proven[i] = True
-                continue
-            if cut is not None and not _reaches(bound, q.required[i]):
-                lower[i], upper[i] = lo_i, hi_i  # short even with the rounding slack: a cut
-                cuts.append(cut)
-                continue
-            lo_i, hi_i, cut, bound, points = exact_model.of(int(i))
-            witnesses.add(points, relations=table.relations)
-            lower[i], upper[i], exact[i] = lo_i, hi_i, True
-            if not _reaches(hi_i - lo_i, q.required[i]):
-                usable = cut is not None and bound <= (hi_i - lo_i) + 1e-6 * max(1.0, hi_i - lo_i) + 1e-6
-                cuts.append(cut if usable else _plain_cut(table, hidden, int(i), q))
+            for step, model in enumerate(models):
+                lo_i, hi_i, cut, bound, points = model.of(int(i))
+                witnesses.add(points, relations=table.relations)
+                width = hi_i - lo_i
+                tight = cut is not None and bound <= width + 1e-6 * max(1.0, width) + 1e-6
+                final = tight or step == len(models) - 1
+                if final:
+                    lower[i], upper[i], exact[i] = lo_i, hi_i, True
+                if _reaches(width, q.required[i]):
+                    proven[i] = True
+                    break
+                if final:
+                    cuts.append(cut if tight else _plain_cut(table, hidden, int(i), q))
+                    break
+                if cut is not None and not _reaches(bound, q.required[i]):
+                    lower[i], upper[i] = lo_i, hi_i  # short even with the rounding slack: a cut
+                    cuts.append(cut)
+                    break
     lo, hi = witnesses.observed(q, hidden)
     inner = targets[~exact[targets]]
     lower[inner] = np.fmin(lower[inner], q.value[inner] + lo[inner])
