@@ -50,10 +50,10 @@ of its range), cheapest proof first:
    hidden cells within a few relations of the cells left, with the rounding slack of the published
    cells beside them); rounds drop the cells proven;
 3. per cell, the exact min and max with published figures taken at face value (the hidden cells
-   linked to it only): proof, or a cut valid for the full reader model when even its dual bound
-   falls short;
-4. per cell, the exact min and max over every cell, published figures free within their rounding
-   intervals (HiGHS, `linear_program`): the final word, with its cut.
+   linked to it only), then over every cell within a few relations of those, then over the whole
+   table, published figures free within their rounding intervals (HiGHS, `linear_program`): each
+   step a proof, or a cut valid for the full reader model when its dual bound falls short, or the
+   exact range when its width meets that bound; the whole table is the final word.
 Proofs are kept and reused while the cells they move keep their bounds; the values of the proofs
 are the audit's ranges (`lower`, `upper`): a reader's full range contains them.
 """
