@@ -1,4 +1,4 @@
-"""A linear program held open between solves, for the audit's many programs over one table.
+"""Linear and mixed-integer programs through HiGHS; a linear program is held open between solves.
 
     program = LinearProgram(A, row_lower, row_upper, col_lower, col_upper, warm=True)
     solution = program.minimise(cost)      # again and again with other costs
@@ -8,7 +8,9 @@ min c·x subject to row_lower <= A x <= row_upper and col_lower <= x <= col_uppe
 asks for the min and max of one cell after another over the same linked component: only the
 objective changes, so the last optimal basis stays primal feasible and the primal simplex goes on
 from it in a few pivots (`warm=True`), where scipy.optimize.linprog would build and solve each
-program from scratch. One-off programs (`warm=False`) use HiGHS's default (dual) simplex.
+program from scratch. One-off programs (`warm=False`) use HiGHS's default (dual) simplex. With
+`integer` some columns must be whole numbers: a mixed-integer program (the choice of complementary
+cells), solved by HiGHS's branch and cut with its presolve.
 
 The raw binding (`highspy._Highs`) is used rather than `highspy.Highs`: the latter registers a
 Python callback on every instance, which prints a banner on standard output and calls back into
@@ -31,9 +33,9 @@ _PRIMAL_SIMPLEX = 4
 
 @dataclass(frozen=True)
 class Solution:
-    """status: 'optimal', 'unbounded', 'unbounded or infeasible' (HiGHS stopped without telling
-    which; a caller that knows a feasible point knows it is unbounded) or HiGHS's words for anything
-    else; x and row_dual (the
+    """status: 'optimal', 'infeasible', 'unbounded', 'unbounded or infeasible' (HiGHS stopped
+    without telling which; a caller that knows a feasible point knows it is unbounded), 'time limit
+    reached' or HiGHS's words for anything else; x and row_dual (the
     multipliers of the rows, HiGHS's sign convention) only when optimal."""
 
     status: str
@@ -48,7 +50,11 @@ class Solution:
 class LinearProgram:
     """One HiGHS model kept between solves (not thread-safe: one per thread)."""
 
-    def __init__(self, A, row_lower, row_upper, col_lower, col_upper, *, warm: bool = False):
+    def __init__(self, A, row_lower, row_upper, col_lower, col_upper, *, warm: bool = False,
+                 integer=None, time_limit: float | None = None, relative_gap: float | None = None):
+        """`warm`: solved again and again with other costs (primal simplex from the last basis).
+        `integer`: a mask of the columns that must take integer values (a mixed-integer program,
+        solved by HiGHS's branch and cut within `time_limit` seconds to `relative_gap`)."""
         A = sparse.csc_matrix(A, dtype=np.float64)
         n_rows, n_cols = A.shape
         arrays = {"row_lower": (row_lower, n_rows), "row_upper": (row_upper, n_rows),
@@ -69,15 +75,25 @@ class LinearProgram:
         lp.a_matrix_.start_ = A.indptr.astype(np.int32)
         lp.a_matrix_.index_ = A.indices.astype(np.int32)
         lp.a_matrix_.value_ = A.data
-        self._highs = highspy._Highs()
-        self._highs.setOptionValue("output_flag", False)
-        # presolve would rebuild the program on every solve and lose the basis between them
-        self._highs.setOptionValue("presolve", "off")
-        if warm:
-            self._highs.setOptionValue("simplex_strategy", _PRIMAL_SIMPLEX)
-        if self._highs.passModel(lp) == highspy.HighsStatus.kError:
+        h = self._highs = highspy._Highs()
+        h.setOptionValue("output_flag", False)
+        if h.passModel(lp) == highspy.HighsStatus.kError:
             raise ValueError("HiGHS refused the linear program (check the bounds: lower <= upper, no NaN)")
         self._all = np.arange(n_cols, dtype=np.int32)
+        if integer is not None:
+            integer = np.asarray(integer, dtype=bool)
+            if integer.shape != (n_cols,):
+                raise ValueError(f"integer has shape {integer.shape}; the matrix {A.shape} needs ({n_cols},)")
+            h.changeColsIntegrality(n_cols, self._all, integer.astype(np.uint8))  # 1 = integer
+            if relative_gap is not None:
+                h.setOptionValue("mip_rel_gap", float(relative_gap))
+        else:
+            # presolve would rebuild the program on every solve and lose the basis between them
+            h.setOptionValue("presolve", "off")
+        if warm:
+            h.setOptionValue("simplex_strategy", _PRIMAL_SIMPLEX)
+        if time_limit is not None:
+            h.setOptionValue("time_limit", max(float(time_limit), 0.01))
 
     def minimise(self, cost) -> Solution:
         cost = np.asarray(cost, dtype=np.float64)
@@ -90,6 +106,10 @@ class LinearProgram:
         if status == highspy.HighsModelStatus.kOptimal:
             solution = h.getSolution()
             return Solution("optimal", np.array(solution.col_value), np.array(solution.row_dual))
+        if status == highspy.HighsModelStatus.kTimeLimit:
+            return Solution("time limit reached")
+        if status == highspy.HighsModelStatus.kInfeasible:
+            return Solution("infeasible")
         if status == highspy.HighsModelStatus.kUnbounded:
             return Solution("unbounded")
         if status == highspy.HighsModelStatus.kUnboundedOrInfeasible:

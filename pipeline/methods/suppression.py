@@ -25,7 +25,7 @@ cell passes when the width of its feasible range, upper − lower, is at least `
 width is what limits how closely a reader can pin the value down, whichever side the true value
 sits on, and it treats a count of 0 (where no lower margin is possible) like any other.
 
-Complementary suppression (`protect_table`): a mixed-integer program (scipy.optimize.milp) chooses
+Complementary suppression (`protect_table`): a mixed-integer program (HiGHS, `linear_program`) chooses
 the cells to hide at least cost, subject to (a) no relation holds exactly one hidden cell that
 needs protecting or was chosen as a complement (two per relation is necessary, not sufficient);
 (b) capacity rows known before any audit: the ±1 dual on a single relation bounds a protected
@@ -67,7 +67,6 @@ from itertools import combinations
 
 import numpy as np
 from scipy import sparse
-from scipy.optimize import Bounds, LinearConstraint, milp
 from scipy.sparse.csgraph import connected_components
 
 from pipeline.methods import lookup_member
@@ -804,8 +803,10 @@ def _relation_rows(table: LinkedTable, q: Quantity, fixed: np.ndarray, eligible:
     pl, pu, hl, hu = _bound_pairs(q)
     need = np.where(fixed, q.required, 0.0)
     parts = M.multiply(M > 0).tocsr()
-    totals = (-M).multiply(M < 0).tocsr()
-    total_of = np.asarray(totals.argmax(axis=1)).ravel()
+    negative = M.data < 0
+    total_of = M.indices[negative]
+    if not np.array_equal(np.repeat(np.arange(M.shape[0]), np.diff(M.indptr))[negative], np.arange(M.shape[0])):
+        raise ValueError("every relation needs exactly one total (one −1 entry per row)")
     part_gain = pl - hl                         # a part's lower bound drops when hidden
     total_gain = hu - pu                        # the total's upper bound rises when hidden
     out_rows, out_rhs = [], []
@@ -1335,26 +1336,24 @@ def _solve_milp(table, primary, fixed, eligible, cost, capacity, cuts, time_limi
         vals.append(g[use])
         lbs.append(rhs)
         k += 1
-    constraints = []
-    if k:
-        A = sparse.csr_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))),
-                              shape=(k, len(free) + n_groups))
-        constraints = [LinearConstraint(A, np.array(lbs), np.inf)]
     if not len(free):
         return fixed.copy(), "optimal"
-    integrality = np.r_[np.ones(len(free)), np.zeros(n_groups)]
-    res = milp(np.r_[cost[free], np.zeros(n_groups)], integrality=integrality, bounds=Bounds(0, 1),
-               constraints=constraints,
-               options={"time_limit": max(float(time_limit), 0.01), "mip_rel_gap": 1e-6})
-    if res.status == 0:
+    n_cols = len(free) + n_groups
+    A = (sparse.csr_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))), shape=(k, n_cols))
+         if k else sparse.csr_matrix((0, n_cols)))
+    program = LinearProgram(A, np.array(lbs, dtype=np.float64), np.full(k, np.inf), np.zeros(n_cols), np.ones(n_cols),
+                            integer=np.r_[np.ones(len(free), dtype=bool), np.zeros(n_groups, dtype=bool)],
+                            time_limit=time_limit, relative_gap=1e-6)
+    solution = program.minimise(np.r_[cost[free], np.zeros(n_groups)])
+    if solution.optimal:
         hidden = fixed.copy()
-        hidden[free[np.round(res.x[:len(free)]) > 0.5]] = True
+        hidden[free[np.round(solution.x[:len(free)]) > 0.5]] = True
         return hidden, "optimal"
-    if res.status == 1:
-        return None, "time limit reached"
-    if res.status == 2:
+    if solution.status == "infeasible":
         return None, "no pattern satisfies the cuts"
-    return None, f"solver stopped: {res.message}"
+    if solution.status == "time limit reached":
+        return None, solution.status
+    return None, f"solver stopped: {solution.status}"
 
 
 def _greedy(table, quantities, primary, fixed, eligible, cost, witnesses):
