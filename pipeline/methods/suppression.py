@@ -1220,9 +1220,9 @@ def protect_table(table: LinkedTable, *, quantities: list[Quantity], withheld, e
             _cycle_proofs(table, q, fixed, targets, witnesses[q.name])
             _prove(q, witnesses[q.name], fixed, targets, proven)
             rng = np.random.default_rng(0)
+            # whole components only: the stragglers are left to the audits, where the cells chosen
+            # by then widen their ranges (neighbourhood rounds here proved few at much cost)
             _find_witnesses(table, q, fixed, targets, witnesses[q.name], proven, rng, stop_share=0.1)
-            if (~proven[targets]).any():
-                _find_witnesses(table, q, fixed, targets, witnesses[q.name], proven, rng, radius=_NEIGHBOURHOOD)
         kept = np.zeros(n, dtype=bool)
         for round_no in range(1, _MAX_CUT_ROUNDS + 1):
             remaining = deadline - time.perf_counter()
