@@ -62,6 +62,7 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass
+from functools import cached_property
 from enum import Enum
 from itertools import combinations
 
@@ -149,6 +150,11 @@ class LinkedTable:
     @property
     def n_cells(self) -> int:
         return self.relations.shape[1]
+
+    @cached_property
+    def cycle_cells(self) -> sparse.csr_matrix:
+        """1 where a cycle moves a cell (asked on every audit: kept)."""
+        return abs(self.cycles).tocsr() if self.cycles is not None else sparse.csr_matrix((0, self.n_cells))
 
     @property
     def n_relations(self) -> int:
@@ -514,7 +520,7 @@ class _Witnesses:
 
     def __init__(self, n: int):
         self.n = n
-        self._pending: list[tuple[np.ndarray, np.ndarray]] = []
+        self._pending: list[sparse.csr_matrix] = []
         self._matrix = sparse.csr_matrix((0, n))
         self._seen: dict[bytes, tuple[int, np.ndarray, np.ndarray]] = {}  # pattern -> rows checked, lo, hi
 
@@ -527,31 +533,21 @@ class _Witnesses:
             points = points[residual <= 1e-6 * np.maximum(1.0, np.abs(points).max(axis=1))]
         for p in points:
             nz = np.flatnonzero(p)
-            if not len(nz):
-                continue
-            if blocks is None:
-                self._pending.append((nz, p[nz]))
-                continue
-            labels = blocks[nz]
-            order = np.argsort(labels, kind="stable")
-            cuts = np.flatnonzero(np.diff(labels[order])) + 1
-            for part in np.split(order, cuts):
-                self._pending.append((nz[part], p[nz[part]]))
+            if blocks is not None:  # one row per block: entries sorted by block label
+                nz = nz[np.argsort(blocks[nz], kind="stable")]
+                labels = blocks[nz]
+                ptr = np.r_[0, np.flatnonzero(np.diff(labels)) + 1, len(nz)] if len(nz) else np.zeros(1, np.int64)
+            else:
+                ptr = np.array([0, len(nz)])
+            self.add_rows(sparse.csr_matrix((p[nz], nz, ptr), shape=(len(ptr) - 1, self.n)))
 
     def add_rows(self, rows: sparse.csr_matrix) -> None:
-        rows = rows.tocsr()
-        for r in range(rows.shape[0]):
-            lo, hi = rows.indptr[r], rows.indptr[r + 1]
-            if hi > lo:
-                self._pending.append((rows.indices[lo:hi].copy(), rows.data[lo:hi].copy()))
+        rows = sparse.csr_matrix(rows)
+        self._pending.append(rows[np.diff(rows.indptr) > 0])
 
     def matrix(self) -> sparse.csr_matrix:
         if self._pending:
-            idx = np.concatenate([i for i, _ in self._pending])
-            val = np.concatenate([v for _, v in self._pending])
-            ptr = np.concatenate([[0], np.cumsum([len(i) for i, _ in self._pending])])
-            new = sparse.csr_matrix((val, idx, ptr), shape=(len(self._pending), self.n))
-            self._matrix = sparse.vstack([self._matrix, new], format="csr")
+            self._matrix = sparse.vstack([self._matrix] + self._pending, format="csr")
             self._pending = []
         return self._matrix
 
@@ -578,10 +574,7 @@ class _Witnesses:
             t = np.where(np.isfinite(t), t, 0.0)
             keep = t > 0
             if keep.any():
-                scaled = sparse.diags(sign * t[keep]) @ m[keep]
-                for row in range(scaled.shape[0]):
-                    lo_, hi_ = scaled.indptr[row], scaled.indptr[row + 1]
-                    self._pending.append((scaled.indices[lo_:hi_].copy(), scaled.data[lo_:hi_].copy()))
+                self.add_rows(sparse.diags(sign * t[keep]) @ m[keep])
         return end
 
     def observed(self, q: Quantity, hidden: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -940,7 +933,12 @@ def _cycle_proofs(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets: 
     C = table.cycles
     if C is None or not C.shape[0] or not len(targets):
         return
-    usable = np.asarray(abs(C) @ (~hidden).astype(np.float64)).ravel() == 0
+    is_target = np.zeros(table.n_cells, dtype=bool)
+    is_target[targets] = True
+    # the cycles whose cells are all hidden and that move a target
+    cells = table.cycle_cells
+    usable = ((np.asarray(cells @ (~hidden).astype(np.float64)).ravel() == 0)
+              & (np.asarray(cells @ is_target.astype(np.float64)).ravel() > 0))
     if not usable.any():
         return
     C = C[usable].tocsr()
@@ -954,8 +952,6 @@ def _cycle_proofs(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets: 
     t_plus = np.minimum.reduceat(plus, starts)
     t_minus = np.minimum.reduceat(minus, starts)
     row_of = np.repeat(np.arange(C.shape[0]), np.diff(C.indptr))
-    is_target = np.zeros(table.n_cells, dtype=bool)
-    is_target[targets] = True
     e = np.flatnonzero(is_target[cols])
     if not len(e):
         return
@@ -967,10 +963,14 @@ def _cycle_proofs(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets: 
     step_down = np.where(v > 0, -t_minus[r], t_plus[r])
     picks = []
     for amount, step in ((rise, step_up), (fall, step_down)):
-        order = np.lexsort((amount, c))
-        last = np.flatnonzero(np.r_[c[order][1:] != c[order][:-1], True])
-        best = order[last]
-        best = best[np.isfinite(amount[best]) & (amount[best] > 0)]
+        amount = np.where(np.isfinite(amount), amount, 0.0)
+        most = np.zeros(table.n_cells)
+        np.maximum.at(most, c, amount)
+        # one entry per cell that reaches its cell's most (assigned in reverse: the first wins)
+        hit = np.flatnonzero((amount == most[c]) & (amount > 0))[::-1]
+        first = np.full(table.n_cells, -1)
+        first[c[hit]] = hit
+        best = first[first >= 0]
         if len(best):
             picks.append(sparse.diags(step[best]) @ C[r[best]])
     for rows in picks:
