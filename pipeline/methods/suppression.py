@@ -62,8 +62,8 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass
-from functools import cached_property
 from enum import Enum
+from functools import cached_property
 from itertools import combinations
 
 import numpy as np
@@ -675,13 +675,11 @@ class _Ranges:
         label = int(self._labels[cell])
         if label not in self._programs:
             M, q = self.table.relations, self.q
-            cols = np.flatnonzero(self._labels == label)
-            if self.widen is not None:
-                inside = self._labels == label
-                for _ring in range(_RINGS):
-                    beside = np.asarray(abs(M[_touching(M, cols)]).sum(axis=0)).ravel() > 0
-                    inside |= beside & self.widen
-                    cols = np.flatnonzero(inside)
+            inside = self._labels == label
+            cols = np.flatnonzero(inside)
+            for _ring in range(_RINGS if self.widen is not None else 0):
+                inside |= (np.asarray(abs(M[_touching(M, cols)]).sum(axis=0)).ravel() > 0) & self.widen
+                cols = np.flatnonzero(inside)
             rows = _touching(M, cols)
             program = None
             if len(rows):
@@ -1020,9 +1018,9 @@ def audit_quantity(table: LinkedTable, quantity: Quantity, hidden, *, witnesses:
         b_free = b_hi > b_lo
         # per cell, published figures at face value first (a small program over the hidden cells
         # linked to it), then every cell within _RINGS relations of those hidden cells free within
-        # its bounds, then the whole table. Each program's points are witnesses and
-        # its duals bound the full reader's width: a bound short of the requirement ends the search
-        # with a cut, and a width that meets the bound is the exact range
+        # its bounds, then the whole table. Each program's points are witnesses and its duals
+        # bound the full reader's width: a bound short of the requirement ends the search with a
+        # cut, and a width that meets the bound is the exact range
         models = [_Ranges(table, q, hidden, free=hidden & b_free),
                   _Ranges(table, q, hidden, free=hidden & b_free, widen=b_free),
                   _Ranges(table, q, hidden, free=b_free)]
