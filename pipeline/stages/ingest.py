@@ -5,14 +5,15 @@ batch size, not the number of records). Problems with the input as a whole (a mi
 uncoercible type, an unreadable or empty file, a broken lookup) raise InputDataError listing every
 problem; problems with single rows set those rows aside as rejects, each with the column, the
 rule (a stable reason code) and the offending value. Row rules are a pandera schema built from
-the config (`build_row_schema`), kept apart from the code that applies it.
+the config (`row_rules`, `build_row_schema`), kept apart from the code that applies it; a batch
+whose rows all pass (one vectorised pass over the same tests) skips the schema.
 """
 
 from __future__ import annotations
 
 import glob
 import hashlib
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from enum import Enum
 from pathlib import Path
@@ -305,10 +306,12 @@ def _check_columns(config, path: Path, kind: str, schema: arrow.Schema) -> list[
 def iter_batches(config, files: list[SourceFile], geography: Geography) -> Iterator[Batch]:
     """Read, type and validate every file batch by batch. Duplicate record ids are caught across
     batches and files (the first occurrence is kept)."""
-    schema = build_row_schema(config, geography)
+    rules = row_rules(config, geography)
+    schema = _schema(rules)
     # the replicate weights are most of the columns: one vectorised pass over them per batch, and
     # the schema's per-column checks of them only for a batch where that pass finds a bad value
-    without_replicates = schema.remove_columns(config.replicate_columns) if config.replicate_columns else schema
+    without_replicates = {col: rule for col, rule in rules.items() if col not in set(config.replicate_columns)}
+    schema_without_replicates = _schema(without_replicates)
     seen = SeenIds()
     design = ClusterDesignCheck.for_config(config)
     columns = needed_columns(config)
@@ -321,8 +324,11 @@ def iter_batches(config, files: list[SourceFile], geography: Geography) -> Itera
             rejects.append(type_rejects)
             clean = (not config.replicate_columns
                      or bool(_valid_replicate_weight(frame[config.replicate_columns].to_numpy(dtype=np.float64)).all()))
-            schema_failures = _schema_failures(without_replicates if clean else schema, frame,
-                                               config.source.record_id)
+            if clean and _rules_hold(without_replicates, frame):
+                schema_failures = _empty_rejects()
+            else:
+                schema_failures = _schema_failures(schema_without_replicates if clean else schema, frame,
+                                                   config.source.record_id)
             if len(type_rejects):  # text that is not a number is reported once, not again as missing
                 already = set(zip(type_rejects["_position"], type_rejects["column"]))
                 schema_failures = schema_failures[[(p, c) not in already for p, c in
@@ -440,7 +446,10 @@ def _coerce_types(config, frame: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFra
     # columns already numeric (Parquet) are converted together: one float64 block, no copy per column
     ready = [col for col, (_, declared) in roles.items()
              if declared in ("integer", "number") and frame[col].dtype.kind in "iufb"]
-    block = frame[ready].to_numpy(dtype="float64", na_value=np.nan) if ready else np.empty((len(frame), 0))
+    # column by column into one Fortran-ordered block: pandas keeps it as its own block, uncopied
+    block = np.empty((len(frame), len(ready)), dtype=np.float64, order="F")
+    for j, col in enumerate(ready):
+        block[:, j] = frame[col].to_numpy(dtype="float64", na_value=np.nan)
     out = {}
     failures = []
     for col, (_, declared) in roles.items():
@@ -457,8 +466,10 @@ def _coerce_types(config, frame: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFra
         else:
             text = s.astype(object)
             out[col] = np.where(pd.isna(text), None, text.astype(str)).astype(object)
-    typed = pd.concat([pd.DataFrame(block, columns=ready, index=frame.index), pd.DataFrame(out, index=frame.index)],
-                      axis=1)[list(roles)]
+    typed = pd.DataFrame(block, columns=ready, index=frame.index, copy=False)
+    for col, values in out.items():
+        typed[col] = values
+    typed = typed[list(roles)]
     rejects = pd.concat(failures, ignore_index=True) if failures else _empty_rejects()
     return typed, rejects
 
@@ -480,39 +491,76 @@ def typed_records(config, frame: pd.DataFrame) -> pd.DataFrame:
 # Row rules: a pandera schema built from the config
 
 
-def build_row_schema(config, geography: Geography) -> pa.DataFrameSchema:
-    """Row rules as a pandera schema. Check names are RejectReason codes so that every failure
-    maps to a stable reason. Nulls are checked by `nullable`; other checks skip nulls."""
+@dataclass(frozen=True)
+class RowRule:
+    """The rules of one column: whether it may be missing, and checks (reason code, elementwise
+    test, whether missing values skip the test)."""
+
+    nullable: bool
+    checks: tuple[tuple[str, Callable, bool], ...] = ()
+
+
+def row_rules(config, geography: Geography) -> dict[str, RowRule]:
+    """Row rules per column, from the config. Check names are RejectReason codes so that every
+    failure maps to a stable reason. Nulls are checked by `nullable`; other checks skip nulls
+    unless they say otherwise."""
     finite = np.isfinite
-    columns = {
-        config.source.record_id: pa.Column(nullable=False),
-        config.geography.key: pa.Column(nullable=False, checks=[
-            pa.Check(lambda s, codes=list(geography.finest_codes): s.isin(codes),
-                     name=RejectReason.UNKNOWN_GEOGRAPHY.value)]),
-        # weights: nullable here so that a missing weight fails the weight rule itself (ignore_na=False)
-        config.design.weight: pa.Column(nullable=True, checks=[
-            pa.Check(lambda s: finite(s) & (s > 0), name=RejectReason.WEIGHT_NOT_POSITIVE.value, ignore_na=False)]),
+    rules = {
+        config.source.record_id: RowRule(nullable=False),
+        config.geography.key: RowRule(nullable=False, checks=(
+            (RejectReason.UNKNOWN_GEOGRAPHY.value, lambda s, codes=list(geography.finest_codes): s.isin(codes), True),)),
+        # weights: nullable here so that a missing weight fails the weight rule itself
+        config.design.weight: RowRule(nullable=True, checks=(
+            (RejectReason.WEIGHT_NOT_POSITIVE.value, lambda s: finite(s) & (s > 0), False),)),
     }
     for col, (_, kind) in _design_columns(config).items():
         # strata and cluster codes may not be missing (a row without them is rejected, like a
         # missing geography key); N_h is a property of the stratum, checked by ClusterDesignCheck
-        columns[col] = pa.Column(nullable=kind != "key")
+        rules[col] = RowRule(nullable=kind != "key")
     for col in config.replicate_columns:
-        columns[col] = pa.Column(nullable=True, checks=[
-            pa.Check(_valid_replicate_weight, name=RejectReason.REPLICATE_WEIGHT_INVALID.value, ignore_na=False)])
+        rules[col] = RowRule(nullable=True, checks=(
+            (RejectReason.REPLICATE_WEIGHT_INVALID.value, _valid_replicate_weight, False),))
     for name, var in config.source.variables.items():
         checks = []
         if var.type == "integer":
-            checks.append(pa.Check(lambda s: finite(s) & (s == np.round(s)), name=RejectReason.NOT_AN_INTEGER.value))
+            checks.append((RejectReason.NOT_AN_INTEGER.value, lambda s: finite(s) & (s == np.round(s)), True))
         if var.type in ("integer", "number") and (var.min is not None or var.max is not None):
             lo = -np.inf if var.min is None else var.min
             hi = np.inf if var.max is None else var.max
-            checks.append(pa.Check(lambda s, lo=lo, hi=hi: (s >= lo) & (s <= hi), name=RejectReason.OUT_OF_RANGE.value))
+            checks.append((RejectReason.OUT_OF_RANGE.value, lambda s, lo=lo, hi=hi: (s >= lo) & (s <= hi), True))
         if var.values is not None:
             allowed = list(var.values) if var.type == "string" else [float(v) for v in var.values]
-            checks.append(pa.Check(lambda s, allowed=allowed: s.isin(allowed), name=RejectReason.VALUE_NOT_ALLOWED.value))
-        columns[name] = pa.Column(nullable=var.missing == "allowed", checks=checks)
-    return pa.DataFrameSchema(columns, strict=False, coerce=False)
+            checks.append((RejectReason.VALUE_NOT_ALLOWED.value, lambda s, allowed=allowed: s.isin(allowed), True))
+        rules[name] = RowRule(nullable=var.missing == "allowed", checks=tuple(checks))
+    return rules
+
+
+def build_row_schema(config, geography: Geography) -> pa.DataFrameSchema:
+    """The row rules as a pandera schema: it names every failing row, column and rule."""
+    return _schema(row_rules(config, geography))
+
+
+def _schema(rules: dict[str, RowRule]) -> pa.DataFrameSchema:
+    return pa.DataFrameSchema(
+        {col: pa.Column(nullable=rule.nullable,
+                        checks=[pa.Check(test, name=name, ignore_na=skip_na) for name, test, skip_na in rule.checks])
+         for col, rule in rules.items()}, strict=False, coerce=False)
+
+
+def _rules_hold(rules: dict[str, RowRule], frame: pd.DataFrame) -> bool:
+    """Whether every row passes every rule: one vectorised pass, the same tests as the schema's,
+    so that the schema (which reports each failure, at a cost per column) runs only on a batch
+    that has one."""
+    for col, rule in rules.items():
+        values = frame[col]
+        missing = values.isna().to_numpy()
+        if not rule.nullable and missing.any():
+            return False
+        for _name, test, skip_na in rule.checks:
+            passed = np.asarray(test(values), dtype=bool)
+            if not (passed | missing if skip_na else passed).all():
+                return False
+    return True
 
 
 _PANDERA_NULL_CHECK = "not_nullable"
