@@ -631,8 +631,8 @@ def test_seen_ids_flags_string_repeats_within_and_across_calls():
 def test_seen_ids_on_many_ids_agrees_with_python_sets():
     rng = np.random.default_rng(3)
     seen, reference = SeenIds(), set()
-    for _ in range(5):
-        ids = rng.integers(0, 2_000, size=500)
+    for _ in range(40):  # batches of varied size: the sorted runs are merged many times over
+        ids = rng.integers(0, 20_000, size=int(rng.integers(0, 800)))
         expected = []
         for i in ids:  # a plain Python set, one id at a time
             expected.append(int(i) in reference)
