@@ -310,7 +310,8 @@ def iter_batches(config, files: list[SourceFile], geography: Geography) -> Itera
     schema = _schema(rules)
     # the replicate weights are most of the columns: one vectorised pass over them per batch, and
     # the schema's per-column checks of them only for a batch where that pass finds a bad value
-    without_replicates = {col: rule for col, rule in rules.items() if col not in set(config.replicate_columns)}
+    replicates = set(config.replicate_columns)
+    without_replicates = {col: rule for col, rule in rules.items() if col not in replicates}
     schema_without_replicates = _schema(without_replicates)
     seen = SeenIds()
     design = ClusterDesignCheck.for_config(config)
@@ -443,10 +444,10 @@ def _coerce_types(config, frame: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFra
     keys as Python str with None for missing. Text that is not a number becomes a reject."""
     id_col = config.source.record_id
     roles = _column_roles(config)
-    # columns already numeric (Parquet) are converted together: one float64 block, no copy per column
+    # columns already numeric (Parquet) go column by column into one Fortran-ordered float64
+    # block, which pandas keeps as its own block, uncopied
     ready = [col for col, (_, declared) in roles.items()
              if declared in ("integer", "number") and frame[col].dtype.kind in "iufb"]
-    # column by column into one Fortran-ordered block: pandas keeps it as its own block, uncopied
     block = np.empty((len(frame), len(ready)), dtype=np.float64, order="F")
     for j, col in enumerate(ready):
         block[:, j] = frame[col].to_numpy(dtype="float64", na_value=np.nan)
@@ -488,7 +489,7 @@ def typed_records(config, frame: pd.DataFrame) -> pd.DataFrame:
 
 
 # --------------------------------------------------------------------------------------------
-# Row rules: a pandera schema built from the config
+# Row rules: defined once; a vectorised pass per batch, a pandera schema to name failures
 
 
 @dataclass(frozen=True)
