@@ -1271,8 +1271,10 @@ def _solve_milp(table, primary, fixed, eligible, cost, capacity, cuts, time_limi
     pattern."""
     M = abs(table.relations).tocsr()
     n_fixed = _relation_counts(M, fixed)
-    holds_primary = np.asarray(M @ (fixed & primary).astype(np.float64)).ravel() > 0
-    asking = np.asarray(M.T @ ((n_fixed == 1) & holds_primary).astype(np.float64)).ravel() > 0
+    # a lone fixed cell that needs protecting: some eligible cell of its relation must be hidden
+    # (a lone unreliable cell is no secret; with nothing to choose from, the audit decides)
+    lone = (n_fixed == 1) & (np.asarray(M @ (fixed & primary).astype(np.float64)).ravel() > 0)
+    asking = np.asarray(M.T @ lone.astype(np.float64)).ravel() > 0
     for cells, _gains, _rhs in capacity:
         asking[cells] = True
     for cut in cuts:
@@ -1281,29 +1283,25 @@ def _solve_milp(table, primary, fixed, eligible, cost, capacity, cuts, time_limi
     for _ in range(_MILP_REACH):
         near = near | (np.asarray(M.T @ (M @ near.astype(np.float64))).ravel() > 0)
     started = time.perf_counter()
-    hidden, status = _milp_over(table, M, primary, fixed, eligible & near, cost, capacity, cuts, time_limit)
+    hidden, status = _milp_over(table, M, n_fixed, lone, fixed, eligible & near, cost, capacity, cuts, time_limit)
     if hidden is None and status == _NO_PATTERN and (eligible & ~near).any():
-        hidden, status = _milp_over(table, M, primary, fixed, eligible, cost, capacity, cuts,
+        hidden, status = _milp_over(table, M, n_fixed, lone, fixed, eligible, cost, capacity, cuts,
                                     time_limit - (time.perf_counter() - started))
     return hidden, status
 
 
-def _milp_over(table, M, primary, fixed, eligible, cost, capacity, cuts, time_limit):
-    """The mixed-integer program over the `eligible` cells (see `_solve_milp`)."""
+def _milp_over(table, M, n_fixed, lone, fixed, eligible, cost, capacity, cuts, time_limit):
+    """The mixed-integer program over the `eligible` cells (see `_solve_milp`): `n_fixed`, the
+    fixed cells per relation; `lone`, the relations whose one fixed cell needs a partner."""
     free = np.flatnonzero(eligible)
     pos = np.full(table.n_cells, -1)
     pos[free] = np.arange(len(free))
-    n_fixed = _relation_counts(M, fixed)
     rows, cols, vals, lbs = [], [], [], []
     k = 0
     # (a) no relation with exactly one hidden cell that needs protecting or was chosen
     coo = M.tocoo()
     rel, cell = coo.row, coo.col
     choosable = eligible[cell]
-    holds_primary = np.asarray(M @ (fixed & primary).astype(np.float64)).ravel() > 0
-    # a lone fixed cell that needs protecting: some eligible cell of its relation must be hidden
-    # (a lone unreliable cell is no secret; with nothing to choose from, the audit decides)
-    lone = (n_fixed == 1) & holds_primary
     pick = lone[rel] & choosable
     if pick.any():
         row_of = np.full(M.shape[0], -1)
