@@ -152,9 +152,30 @@ class LinkedTable:
         return self.relations.shape[1]
 
     @cached_property
-    def cycle_cells(self) -> sparse.csr_matrix:
-        """1 where a cycle moves a cell (asked on every audit: kept)."""
-        return abs(self.cycles).tocsr() if self.cycles is not None else sparse.csr_matrix((0, self.n_cells))
+    def cycles_by_cell(self) -> sparse.csc_matrix:
+        """The cycles column by column: for each cell, the cycles that move it and by how much
+        (asked on every audit: kept)."""
+        return (self.cycles if self.cycles is not None else sparse.csr_matrix((0, self.n_cells))).tocsc()
+
+    @cached_property
+    def cycle_rooms(self) -> list[tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]]:
+        """The cycles grouped by their number of cells, one (cycles, plus, minus, size) per group
+        (asked on every audit: kept): for each cycle and each of its cells, where the room for a
+        step +1 along the cycle sits in the array [room up of every cell, room down of every
+        cell] (the cell's room up where the cycle raises it, its room down where it lowers it),
+        where the room for a step −1 sits, and the cells' steps |δ| (None when all are 1, as in
+        the cycles of `linked_table`)."""
+        C = self.cycles if self.cycles is not None else sparse.csr_matrix((0, self.n_cells))
+        lengths = np.diff(C.indptr)
+        groups = []
+        for length in np.unique(lengths[lengths > 0]):
+            rows = np.flatnonzero(lengths == length)
+            entries = C.indptr[rows][None, :] + np.arange(length)[:, None]  # cells × cycles
+            cells, rises = C.indices[entries].astype(np.int64), C.data[entries] > 0
+            size = np.abs(C.data[entries])
+            groups.append((rows, cells + self.n_cells * ~rises, cells + self.n_cells * rises,
+                           None if np.all(size == 1) else size))
+        return groups
 
     @property
     def n_relations(self) -> int:
@@ -924,55 +945,50 @@ def _find_witnesses(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets
 
 def _cycle_proofs(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets: np.ndarray,
                   witnesses: _Witnesses) -> None:
-    """Witnesses from the table's short cycles whose cells are all hidden: moving along a cycle
-    by t keeps every relation, so with the largest t the bounds allow in each direction it gives
-    two points; for each target the best point up and the best point down are kept. No linear
-    program: this proves most cells at the finest level at almost no cost."""
+    """Witnesses from the table's short cycles through the targets: moving along a cycle by t
+    keeps every relation, so with the largest t the bounds allow in each direction it gives two
+    points; for each target the best point up and the best point down are kept. No linear
+    program: this proves most cells at the finest level at almost no cost. A cycle through a
+    published cell moves no further than that cell's rounding interval allows (not at all for an
+    exact figure), so it rarely proves anything, but it is valid."""
     C = table.cycles
     if C is None or not C.shape[0] or not len(targets):
         return
-    is_target = np.zeros(table.n_cells, dtype=bool)
-    is_target[targets] = True
-    # the cycles whose cells are all hidden and that move a target
-    cells = table.cycle_cells
-    usable = ((np.asarray(cells @ (~hidden).astype(np.float64)).ravel() == 0)
-              & (np.asarray(cells @ is_target.astype(np.float64)).ravel() > 0))
-    if not usable.any():
+    targets = np.sort(targets)
+    through = table.cycles_by_cell[:, targets]      # per target: its cycles and its step in each
+    if not through.nnz:
         return
-    C = C[usable].tocsr()
+    # how far each cycle through a target can go, up (+t) and down (−t)
+    wanted = np.zeros(C.shape[0], dtype=bool)
+    wanted[through.indices] = True
     lower, upper = _bounds(q, hidden)
-    up_room, down_room = upper - q.value, q.value - lower
-    d, cols = C.data, C.indices
-    with np.errstate(divide="ignore", invalid="ignore"):
-        plus = np.where(d > 0, up_room[cols] / d, down_room[cols] / -d)     # room for +t·δ
-        minus = np.where(d > 0, down_room[cols] / d, up_room[cols] / -d)    # room for −t·δ
-    starts = C.indptr[:-1]
-    t_plus = np.minimum.reduceat(plus, starts)
-    t_minus = np.minimum.reduceat(minus, starts)
-    row_of = np.repeat(np.arange(C.shape[0]), np.diff(C.indptr))
-    e = np.flatnonzero(is_target[cols])
-    if not len(e):
-        return
-    r, c, v = row_of[e], cols[e], d[e]
-    # how far each cycle takes the target up, and down, and with which signed step
-    rise = np.where(v > 0, t_plus[r] * v, t_minus[r] * -v)
-    fall = np.where(v > 0, t_minus[r] * v, t_plus[r] * -v)
-    step_up = np.where(v > 0, t_plus[r], -t_minus[r])
-    step_down = np.where(v > 0, -t_minus[r], t_plus[r])
-    picks = []
-    for amount, step in ((rise, step_up), (fall, step_down)):
-        amount = np.where(np.isfinite(amount), amount, 0.0)
-        most = np.zeros(table.n_cells)
-        np.maximum.at(most, c, amount)
-        # one entry per cell that reaches its cell's most (assigned in reverse: the first wins)
-        hit = np.flatnonzero((amount == most[c]) & (amount > 0))[::-1]
-        first = np.full(table.n_cells, -1)
-        first[c[hit]] = hit
-        best = first[first >= 0]
+    room = np.concatenate([upper - q.value, q.value - lower])
+    reach = np.zeros(2 * C.shape[0])   # [+t of every cycle, −t of every cycle]
+    for rows, plus, minus, size in table.cycle_rooms:
+        pick = np.flatnonzero(wanted[rows])
+        if len(pick) < len(rows) // 2:
+            rows, plus, minus = rows[pick], plus[:, pick], minus[:, pick]
+            size = None if size is None else size[:, pick]
+        for offset, where in ((0, plus), (C.shape[0], minus)):
+            rooms = room[where] if size is None else room[where] / size
+            most = np.minimum.reduce(rooms, axis=0)
+            reach[offset + rows] = np.where(np.isfinite(most), np.maximum(most, 0.0), 0.0)
+    # per target entry: how far its cycle takes the target up and down
+    row, v = through.indices, through.data
+    up_side = row + C.shape[0] * (v < 0)      # a cycle lowering the target raises it run backwards
+    down_side = row + C.shape[0] * (v > 0)
+    counts = np.diff(through.indptr)
+    segments = through.indptr[:-1][counts > 0]
+    target_of = np.repeat(np.arange(len(segments)), counts[counts > 0])
+    unit = np.all(np.abs(v) == 1)
+    for side, sign in ((up_side, 1.0), (down_side, -1.0)):
+        amount = reach[side] if unit else reach[side] * np.abs(v)
+        most = np.maximum.reduceat(amount, segments)
+        # the first entry of each target that reaches its target's most
+        top = np.flatnonzero((amount == most[target_of]) & (amount > 0))
+        best = top[np.r_[True, target_of[top[1:]] != target_of[top[:-1]]]] if len(top) else top
         if len(best):
-            picks.append(sparse.diags(step[best]) @ C[r[best]])
-    for rows in picks:
-        witnesses.add_rows(rows)
+            witnesses.add_rows(sparse.diags(reach[side[best]] * sign * np.sign(v[best])) @ C[row[best]])
 
 
 def _reaches(width, required) -> np.ndarray:
