@@ -172,6 +172,21 @@ def test_cycle_proofs_take_each_target_as_far_as_its_best_cycle(seed):
         assert (hi[i], -lo[i]) == pytest.approx((rise, fall), abs=1e-9)
 
 
+def test_witness_programs_split_along_independent_blocks(monkeypatch):
+    # with the nation and both regions published, the areas of R1 and of R2 share no relation
+    # with a free cell: two blocks, gathered into one program unless programs are kept small
+    table, _ = hierarchy([5, 6, 7, 8, 9, 10])
+    areas, todo = np.arange(3, 9), np.array([3, 6])
+    parts, components = S._programs(table.relations, areas, todo)
+    assert [p.tolist() for p in parts] == [[3, 4, 5, 6, 7, 8]]
+    assert len(set(components[0][:3])) == 1 and components[0][0] != components[0][3]
+    monkeypatch.setattr(S, "_PROGRAM_CELLS", 1)
+    parts, _ = S._programs(table.relations, areas, todo)
+    assert [p.tolist() for p in parts] == [[3, 4, 5], [6, 7, 8]]
+    parts, _ = S._programs(table.relations, areas, np.array([7]))   # a block without a target: left out
+    assert [p.tolist() for p in parts] == [[6, 7, 8]]
+
+
 # --------------------------------------------------------------------------------------------
 # Primary suppression
 

@@ -111,6 +111,10 @@ _RINGS = 3
 # A witness round costs about as much as a handful of single-cell programs: rounds go on while
 # each proves at least this many cells (and the share of the rest given to the search).
 _MIN_GAIN = 4
+# Witness programs are split along the independent blocks of the cells they span, into programs
+# of at least this many cells (one program of 15,000 cells took 1.5 times as long as seven of
+# about 2,000 on the benchmark's S table; on the demo, splitting below that cost more than it gave).
+_PROGRAM_CELLS = 2000
 # Solves of the whole mixed-integer program; later rounds keep the cells chosen and add to them.
 _GLOBAL_ROUNDS = 2
 # Rounds of cuts in all before the greedy fall-back takes over.
@@ -884,10 +888,11 @@ def _find_witnesses(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets
                     witnesses: _Witnesses, proven: np.ndarray, rng: np.random.Generator, *,
                     radius: int | None = None, stop_share: float = 0.02) -> None:
     """Witness rounds for the targets not yet proven; adds the points found to `witnesses` and
-    updates `proven` in place. The programs span the targets' whole linked components, or with
-    `radius` only the hidden cells within that many relations of them (the rest held at their
-    true values: smaller programs, still valid points). Rounds stop when one proves less than
-    `stop_share` of the cells it was given: the rest go to the next step."""
+    updates `proven` in place. The programs span the targets' linked components, or with `radius`
+    only the hidden cells within that many relations of them (the rest held at their true values:
+    smaller programs, still valid points), split along independent blocks (`_programs`). Rounds
+    stop when one proves less than `stop_share` of the cells it was given: the rest go to the
+    next step."""
     M = table.relations
     idx = np.flatnonzero(hidden)
     lower, upper = _bounds(q, hidden)
@@ -898,26 +903,11 @@ def _find_witnesses(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets
         m = abs(M[:, idx])
         adjacency = (m.T @ m).tocsr()
     previous = None
+    k = _WITNESS_COPIES
     for _ in range(_WITNESS_ROUNDS):
         todo = targets[~proven[targets]]
         if not len(todo):
             return
-        if adjacency is None:
-            cols = idx[np.isin(labels[idx], np.unique(labels[todo]))]
-        else:
-            near = np.zeros(len(idx), dtype=bool)
-            near[np.searchsorted(idx, todo)] = True
-            for _step in range(radius):
-                near |= np.asarray(adjacency @ near.astype(np.float64)).ravel() > 0
-            cols = idx[near]
-            # and the published figures beside them, free within their rounding intervals: a
-            # few cells are protected by that slack alone
-            touched = np.asarray(abs(M[_touching(M, cols)]).sum(axis=0)).ravel() > 0
-            cols = np.flatnonzero((np.isin(np.arange(table.n_cells), cols)) | (touched & ~hidden & (upper > lower)))
-        rows = _touching(M, cols)
-        M_h = M[rows][:, cols].tocsr()
-        local = np.searchsorted(cols, todo)
-        k = _WITNESS_COPIES
         if previous is None:
             up = rng.integers(0, k, len(todo))
             down = (up + rng.integers(1, k, len(todo))) % k
@@ -927,20 +917,57 @@ def _find_witnesses(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets
             flat = up == down
             up = np.where(flat, rng.integers(0, k, len(todo)), up)
             down = np.where(flat | (down == up), (up + rng.integers(1, k, len(todo))) % k, down)
-        D = _witness_round(M_h, np.minimum(low_all[cols], 0), np.maximum(high_all[cols], 0), local,
-                           q.required[todo], up, down, k)
-        if D is None:
-            return
+        if adjacency is None:
+            cols = idx[np.isin(labels[idx], labels[todo])]
+        else:
+            near = np.zeros(len(idx), dtype=bool)
+            near[np.searchsorted(idx, todo)] = True
+            for _step in range(radius):
+                near |= np.asarray(adjacency @ near.astype(np.float64)).ravel() > 0
+            # and the published figures beside them, free within their rounding intervals: a
+            # few cells are protected by that slack alone
+            chosen = np.asarray(abs(M[_touching(M, idx[near])]).sum(axis=0)).ravel() > 0
+            chosen &= ~hidden & (upper > lower)
+            chosen[idx[near]] = True
+            cols = np.flatnonzero(chosen)
+        parts, components = _programs(M, cols, todo)
         previous = np.zeros((k, table.n_cells))
-        previous[:, cols] = np.where(np.abs(D) > 1e-9 * np.maximum(1.0, np.abs(q.value[cols])), D, 0.0)
+        for cols in parts:
+            mine = np.isin(todo, cols)
+            rows = _touching(M, cols)
+            D = _witness_round(M[rows][:, cols].tocsr(), np.minimum(low_all[cols], 0), np.maximum(high_all[cols], 0),
+                               np.searchsorted(cols, todo[mine]), q.required[todo[mine]], up[mine], down[mine], k)
+            if D is not None:
+                previous[:, cols] = np.where(np.abs(D) > 1e-9 * np.maximum(1.0, np.abs(q.value[cols])), D, 0.0)
         blocks = np.full(table.n_cells, -1, dtype=np.int64)
-        link = abs(M_h)
-        blocks[cols] = connected_components((link.T @ link).tocsr(), directed=False)[1]
+        blocks[np.concatenate(parts)] = np.concatenate(components)
         witnesses.add(previous, blocks, relations=M)
         before = int(proven.sum())
         _prove(q, witnesses, hidden, targets, proven)
         if int(proven.sum()) - before < max(_MIN_GAIN, stop_share * len(todo)):
             return
+
+
+def _programs(M: sparse.csr_matrix, cols: np.ndarray, todo: np.ndarray) -> tuple[list[np.ndarray], list[np.ndarray]]:
+    """The cells `cols` split into independent programs: the linked components among them that
+    hold a cell of `todo`, gathered until a program has _PROGRAM_CELLS cells (the simplex's work
+    grows faster than the program, but each program has a fixed cost too). Returns each program's
+    cells (ascending) and the component of each of them."""
+    chosen = np.zeros(M.shape[1], dtype=bool)
+    chosen[cols] = True
+    component = _free_components(M, chosen)[cols]
+    keep = np.isin(component, component[np.isin(cols, todo)])
+    cols, component = cols[keep], component[keep]
+    labels, sizes = np.unique(component, return_counts=True)
+    program_of, current, filled = np.zeros(len(labels), dtype=np.int64), 0, 0
+    for i, size in enumerate(sizes):
+        if filled >= _PROGRAM_CELLS:
+            current, filled = current + 1, 0
+        program_of[i], filled = current, filled + size
+    program = program_of[np.searchsorted(labels, component)]
+    order = np.lexsort((cols, program))
+    cuts = np.flatnonzero(np.diff(program[order])) + 1
+    return np.split(cols[order], cuts), np.split(component[order], cuts)
 
 
 def _cycle_proofs(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets: np.ndarray,
@@ -1231,7 +1258,8 @@ def protect_table(table: LinkedTable, *, quantities: list[Quantity], withheld, e
                 witnesses[q.name].take(witnesses[other.name], q, fixed)
             targets = np.flatnonzero(fixed & (q.required > 0))
             proven = np.zeros(n, dtype=bool)
-            _cycle_proofs(table, q, fixed, targets, witnesses[q.name])
+            _prove(q, witnesses[q.name], fixed, targets, proven)
+            _cycle_proofs(table, q, fixed, targets[~proven[targets]], witnesses[q.name])
             _prove(q, witnesses[q.name], fixed, targets, proven)
             rng = np.random.default_rng(0)
             # whole components only: the stragglers are left to the audits, where the cells chosen
