@@ -73,6 +73,21 @@ def test_replicate_variance_from_replicate_sums(tmp_path, method, scale):
     assert out["effective_n"] == pytest.approx(min(50, 0.35 * 0.65 / expected), rel=1e-12)
 
 
+def test_replicate_variance_in_slices_of_cells_is_the_formula_cell_by_cell(tmp_path, monkeypatch):
+    # slices of 2 cells over 5 cells: every slice boundary is crossed; DESIGN §4 with factor 4/R
+    monkeypatch.setattr("pipeline.stages.estimate._CELLS_PER_SLICE", 2)
+    config = config_with(tmp_path, variance="replicate",
+                         replicates={"prefix": "rw", "count": 4, "method": "successive_difference"})
+    rng = np.random.default_rng(5)
+    base = rng.uniform(80, 120, (5, 4))
+    count = base * rng.uniform(0.2, 0.5, (5, 4))
+    rows = [(50, 17, 100.0, 30.0 + i, 250.0) for i in range(5)]
+    out = estimate(table(rows, base, count), config)
+    p_hat = (30.0 + np.arange(5)) / 100.0
+    expected = ((count / base - p_hat[:, None]) ** 2).sum(axis=1)
+    np.testing.assert_allclose(out["variance"], expected, rtol=1e-12)
+
+
 def test_empty_cell_has_no_figures(tmp_path):
     config = config_with(tmp_path, variance="kish")
     out = estimate(table([(0, 0, 0.0, 0.0, 0.0)]), config).iloc[0]

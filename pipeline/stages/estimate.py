@@ -13,6 +13,10 @@ from pipeline.methods import intervals, variance
 from pipeline.stages.aggregate import CellTable
 
 
+# Cells per slice of the replicate-variance computation (with 80 replicates, 40 MiB per array).
+_CELLS_PER_SLICE = 65_536
+
+
 def estimate(cells: CellTable, config) -> pd.DataFrame:
     f = cells.frame.copy()
     n = f["sample_size"].to_numpy(dtype=np.float64)
@@ -61,9 +65,14 @@ def cell_variance(cells: CellTable, config, *, p_hat: np.ndarray, n: np.ndarray,
                                    cells.frame["sum_squared_weights"].to_numpy())
     elif method == "replicate":
         reps = config.design.replicates
-        p_rep = variance.replicate_estimates(cells.replicate_count, cells.replicate_base)
-        v = variance.replicate_variance(p_hat, p_rep, method=reps.method, fay_rho=reps.fay_rho,
-                                        factor=reps.factor, multipliers=reps.multipliers)
+        v = np.empty(len(p_hat))
+        # in slices of cells: the replicate estimates and their squared deviations are cells × R
+        # arrays each, several at once, which for a national table would outgrow the sums themselves
+        for start in range(0, len(p_hat), _CELLS_PER_SLICE):
+            part = slice(start, start + _CELLS_PER_SLICE)
+            p_rep = variance.replicate_estimates(cells.replicate_count[part], cells.replicate_base[part])
+            v[part] = variance.replicate_variance(p_hat[part], p_rep, method=reps.method, fay_rho=reps.fay_rho,
+                                                  factor=reps.factor, multipliers=reps.multipliers)
     elif method == "linearization":
         v = (lin or linearization(cells, config)).variance
     else:  # the config only admits the methods above
