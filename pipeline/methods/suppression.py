@@ -619,10 +619,10 @@ class _Witnesses:
             rows = np.repeat(np.arange(new.shape[0]), np.diff(new.indptr))
             valid = np.ones(new.shape[0], dtype=bool)
             valid[rows[bad]] = False
-            keep = new[valid]
-            if keep.shape[0]:
-                lo = np.minimum(lo, keep.min(axis=0).toarray().ravel())
-                hi = np.maximum(hi, keep.max(axis=0).toarray().ravel())
+            entries = valid[rows]
+            lo, hi = lo.copy(), hi.copy()
+            np.minimum.at(lo, cols[entries], new.data[entries])
+            np.maximum.at(hi, cols[entries], new.data[entries])
             self._seen[key] = (m.shape[0], lo, hi)
         return lo, hi
 
