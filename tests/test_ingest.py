@@ -30,6 +30,7 @@ from pipeline.errors import InputDataError
 from pipeline.stages.ingest import (
     RejectReason,
     SeenIds,
+    _coerce_types,
     _rules_hold,
     build_row_schema,
     iter_batches,
@@ -485,6 +486,30 @@ def test_a_duplicate_id_in_a_later_file_keeps_the_first(tmp_path):
 
 # --------------------------------------------------------------------------------------------
 # CSV
+
+
+def test_arrow_types_become_the_working_types(tmp_path):
+    # the batch goes from Arrow to the working types without pandas in between: expected values
+    # are pyarrow's own reading of each column (to_pylist), put in the working form by hand
+    table = arrow.table({
+        "pid": arrow.array([7, 8, 9], arrow.int64()),
+        "area": arrow.array(["A1", "A2", "A3"]).dictionary_encode(),
+        "wt": arrow.array([1.5, 2.0, 3.0]),
+        "rw1": arrow.array([1, 2, 3], arrow.int32()),
+        "rw2": arrow.array([None, None, None], arrow.null()),
+        "sex": arrow.array([True, False, None]),
+        "age": arrow.array([20, None, 40], arrow.int8()),
+        "internet": arrow.array([1, 2, 3], arrow.uint8()),
+    })
+    config = small_config(tmp_path, tmp_path / "unused.parquet")
+    typed, rejects = _coerce_types(config, table.to_batches()[0])
+    assert len(rejects) == 0
+    assert typed["pid"].tolist() == [str(v) for v in table["pid"].to_pylist()]
+    assert typed["area"].tolist() == table["area"].to_pylist()
+    for col in ("wt", "rw1", "rw2", "sex", "age", "internet"):
+        expected = [np.nan if v is None else float(v) for v in table[col].to_pylist()]
+        assert typed[col].dtype == np.float64
+        np.testing.assert_array_equal(typed[col].to_numpy(), expected)
 
 
 def test_demo_csv_gives_the_same_accepted_frame_as_the_parquet(tmp_path, small_demo):
