@@ -931,7 +931,8 @@ def _find_witnesses(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets
             chosen &= ~hidden & (upper > lower)
             chosen[idx[near]] = True
             cols = np.flatnonzero(chosen)
-        parts, components = _programs(M, cols, todo)
+        # whole components: their labels are known; a neighbourhood's blocks are worked out
+        parts, components = _programs(M, cols, todo, labels[cols] if adjacency is None else None)
         previous = np.zeros((k, table.n_cells))
         for cols in parts:
             mine = np.isin(todo, cols)
@@ -949,14 +950,17 @@ def _find_witnesses(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets
             return
 
 
-def _programs(M: sparse.csr_matrix, cols: np.ndarray, todo: np.ndarray) -> tuple[list[np.ndarray], list[np.ndarray]]:
+def _programs(M: sparse.csr_matrix, cols: np.ndarray, todo: np.ndarray,
+              component: np.ndarray | None = None) -> tuple[list[np.ndarray], list[np.ndarray]]:
     """The cells `cols` split into independent programs: the linked components among them that
     hold a cell of `todo`, gathered until a program has _PROGRAM_CELLS cells (the simplex's work
-    grows faster than the program, but each program has a fixed cost too). Returns each program's
-    cells (ascending) and the component of each of them."""
-    chosen = np.zeros(M.shape[1], dtype=bool)
-    chosen[cols] = True
-    component = _free_components(M, chosen)[cols]
+    grows faster than the program, but each program has a fixed cost too). `component`: each
+    cell's component label when already known. Returns each program's cells (ascending) and the
+    component of each of them."""
+    if component is None:
+        chosen = np.zeros(M.shape[1], dtype=bool)
+        chosen[cols] = True
+        component = _free_components(M, chosen)[cols]
     keep = np.isin(component, component[np.isin(cols, todo)])
     cols, component = cols[keep], component[keep]
     labels, sizes = np.unique(component, return_counts=True)
@@ -1008,7 +1012,7 @@ def _cycle_proofs(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets: 
     counts = np.diff(through.indptr)
     segments = through.indptr[:-1][counts > 0]
     target_of = np.repeat(np.arange(len(segments)), counts[counts > 0])
-    unit = np.all(np.abs(v) == 1)
+    unit = all(size is None for *_, size in table.cycle_rooms)  # every step ±1
     for side, sign in ((up_side, 1.0), (down_side, -1.0)):
         amount = reach[side] if unit else reach[side] * np.abs(v)
         most = np.maximum.reduceat(amount, segments)
