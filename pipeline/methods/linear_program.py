@@ -80,6 +80,7 @@ class LinearProgram:
         if h.passModel(lp) == highspy.HighsStatus.kError:
             raise ValueError("HiGHS refused the linear program (check the bounds: lower <= upper, no NaN)")
         self._all = np.arange(n_cols, dtype=np.int32)
+        self._cost = np.zeros(n_cols)  # the costs HiGHS holds (passModel set them to 0)
         if integer is not None:
             integer = np.asarray(integer, dtype=bool)
             if integer.shape != (n_cols,):
@@ -100,7 +101,11 @@ class LinearProgram:
         if cost.shape != (self.n_cols,):
             raise ValueError(f"cost has shape {cost.shape}; the program has {self.n_cols} columns")
         h = self._highs
-        h.changeColsCost(self.n_cols, self._all, cost)
+        # only the costs that changed: the audit moves a single 1 from cell to cell
+        changed = np.flatnonzero(cost != self._cost).astype(np.int32)
+        if len(changed):
+            h.changeColsCost(len(changed), changed, cost[changed])
+            self._cost = cost.copy()
         h.run()
         status = h.getModelStatus()
         if status == highspy.HighsModelStatus.kOptimal:

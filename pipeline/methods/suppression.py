@@ -711,15 +711,15 @@ class _Ranges:
             if len(rows):
                 sub = M[rows]
                 A = sub[:, cols]
-                # in deviations d = y − true value the true point is d = 0, a vertex of the split
-                # form d = d⁺ − d⁻ (both >= 0): the first solve starts feasible; the right-hand
-                # side is the float residual of the true values (≈ 0)
+                # in deviations d = y − true value (the true point is d = 0, inside the bounds);
+                # the right-hand side is the float residual of the true values (≈ 0). One column
+                # per cell: the split form d = d⁺ − d⁻, whose first basis is feasible, took 1.7
+                # times as long per solve on the demo (twice the columns to price, same answers)
                 a = q.value[cols]
                 b = -(sub @ q.value)
                 lo = np.minimum(self.lower[cols] - a, 0.0)
                 hi = np.maximum(self.upper[cols] - a, 0.0)
-                program = LinearProgram(sparse.hstack([A, -A], format="csc"), b, b, np.zeros(2 * len(cols)),
-                                        np.concatenate([hi, -lo]), warm=True)
+                program = LinearProgram(A, b, b, lo, hi, warm=True)
             self._programs[label] = (cols, rows, program)
         return self._programs[label]
 
@@ -736,15 +736,15 @@ class _Ranges:
         target = int(np.searchsorted(cols, cell))
         found, points = [], []
         for sign in (-1.0, 1.0):  # maximise, then minimise
-            c = np.zeros(2 * k)
-            c[target], c[k + target] = sign, -sign
+            c = np.zeros(k)
+            c[target] = sign
             solution = program.minimise(c)
             if solution.status in ("unbounded", "unbounded or infeasible"):  # d = 0 is feasible: unbounded
                 found.append((np.inf if sign < 0 else -np.inf, None))
                 continue
             if not solution.optimal:
                 raise RuntimeError(f"audit linear program for cell {cell} ({q.name}) failed: {solution.status}")
-            d = solution.x[:k] - solution.x[k:]
+            d = solution.x
             point = np.zeros(table.n_cells)
             point[cols] = d
             points.append(point)
