@@ -140,6 +140,41 @@ def test_short_cycles_keep_every_relation():
     assert np.diff(C.indptr).min() >= 3
 
 
+@pytest.mark.parametrize("seed", range(6))
+def test_circuits_are_every_minimal_dependent_set_by_rank(seed, monkeypatch):
+    # reference: the definition, subset by subset with numpy's matrix rank (dependent: rank below
+    # its size; minimal: every smaller subset independent), on random ±1 matrices like relations
+    rng = np.random.default_rng(seed)
+    D = rng.choice([-1.0, 0.0, 0.0, 1.0], size=(4, 7))
+    expected = []
+    for size in range(2, 5):
+        for subset in itertools.combinations(range(7), size):
+            sub = D[:, subset]
+            if np.linalg.matrix_rank(sub) < size and all(
+                    np.linalg.matrix_rank(sub[:, [j for j in range(size) if j != drop]]) == size - 1
+                    for drop in range(size)):
+                expected.append(subset)
+    found = S._circuits(D, 4)
+    assert sorted(tuple(c.tolist()) for c, _ in found) == sorted(expected)
+    for support, v in found:
+        assert v[0] == 1 and np.abs(D[:, support] @ v).max() < 1e-9
+    # a size with more subsets than the budget is not looked at; smaller sizes still are
+    monkeypatch.setattr(S, "_CIRCUIT_SUBSETS", 35)  # C(7, 2) = 21, C(7, 3) = C(7, 4) = 35: all fit
+    assert len(S._circuits(D, 4)) == len(found)
+    monkeypatch.setattr(S, "_CIRCUIT_SUBSETS", 34)
+    assert sorted(tuple(c.tolist()) for c, _ in S._circuits(D, 4)) == [c for c in sorted(expected) if len(c) == 2]
+
+
+def test_a_breakdown_into_many_categories_still_builds_its_cycles():
+    # 6 × 8 categories with both margins: 63 codes at the unit, 595,665 subsets of four (tried one
+    # by one with a rank each, even a 4 × 5 table took 8 s); all C(6,2)·C(8,2) = 420 rectangles
+    table, _, _ = two_way(np.ones((6, 8)))
+    C = table.cycles
+    interior = np.diff(C.indptr) == 4
+    assert interior.sum() >= 420
+    assert np.abs((table.relations @ C.T).toarray()).max() == 0
+
+
 @pytest.mark.parametrize("seed", range(4))
 def test_cycle_proofs_take_each_target_as_far_as_its_best_cycle(seed):
     # reference: every cycle through the target, moved by the largest step its cells' bounds allow

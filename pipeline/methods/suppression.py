@@ -60,11 +60,12 @@ are the audit's ranges (`lower`, `upper`): a reader's full range contains them.
 
 from __future__ import annotations
 
+import itertools
 import time
 from dataclasses import dataclass
 from enum import Enum
 from functools import cached_property
-from itertools import combinations
+from math import comb
 
 import numpy as np
 from scipy import sparse
@@ -129,6 +130,10 @@ _MAX_CUT_ROUNDS = 40
 # constraints ask for something: on the benchmark's national table 2 costs what the whole table
 # costs in a program half the size (1 cut the time again but cost 14% more cells on the demo).
 _MILP_REACH = 2
+# Circuits of a unit's category relations (the short cycles) are looked for among at most this
+# many subsets of each size (a breakdown into many categories has millions; 2 million screen in
+# about a second).
+_CIRCUIT_SUBSETS = 2_000_000
 _NO_PATTERN = "no pattern satisfies the cuts"
 
 
@@ -299,12 +304,13 @@ def linked_table(*, unit, parent, level, domains, categories) -> LinkedTable:
     return LinkedTable(relations=relations, coarseness=coarseness.astype(np.int64), cycles=cycles)
 
 
-def _short_cycles(relations, *, unit, parent, level, code, base, find, max_size: int = 5):
+def _short_cycles(relations, *, unit, parent, level, code, base, find, max_size: int = 4):
     """Moves δ with relations·δ = 0 of the form φ at unit u minus φ at a sibling unit u' (same
     parent), φ a circuit (minimal dependent set) of the category relations at one unit over the
     categories with no finer geography below them; at the top level, φ alone. In a two-way table
-    these are the rectangles of four cells; with margins, chains through the 'all' cells. Each
-    is checked against every relation before it is kept."""
+    these are the rectangles of four cells; with margins, chains through the 'all' cells (every
+    circuit of the demo and benchmark tables has at most four cells: `max_size`). Each is checked
+    against every relation before it is kept."""
     n = len(unit)
     out_rows, out_cols, out_vals = [], [], []
     n_cycles = 0
@@ -370,18 +376,27 @@ def _short_cycles(relations, *, unit, parent, level, code, base, find, max_size:
 
 def _circuits(D: np.ndarray, max_size: int) -> list[tuple[np.ndarray, np.ndarray]]:
     """Minimal sets of columns of D that are linearly dependent, with their null vector scaled to
-    +1 on the first column (small matrices only: every subset up to max_size is tried)."""
+    +1 on the first column. Every subset up to max_size is screened at once: in a dependent set
+    no row has exactly one nonzero entry (that column's part could not cancel), which leaves few
+    to test by rank. Sizes whose subsets exceed _CIRCUIT_SUBSETS are not looked at (a unit with
+    very many categories): the circuits only speed the audit up, the linear programs prove the
+    rest."""
     k = D.shape[1]
+    nonzero = (np.abs(D) > 1e-12).astype(np.uint8)
     found: list[tuple[np.ndarray, np.ndarray]] = []
     supports: list[set] = []
     for size in range(2, min(max_size, k) + 1):
-        for subset in combinations(range(k), size):
-            if any(s <= set(subset) for s in supports):
+        if comb(k, size) > _CIRCUIT_SUBSETS:
+            break
+        every = np.fromiter(itertools.chain.from_iterable(itertools.combinations(range(k), size)), dtype=np.int64)
+        every = every.reshape(-1, size)
+        screened = [chunk[~((nonzero[:, chunk].sum(axis=2) == 1).any(axis=0))]
+                    for chunk in np.array_split(every, max(1, len(every) // 50_000))]
+        for subset in np.concatenate(screened) if screened else every[:0]:
+            if any(s <= set(subset.tolist()) for s in supports):
                 continue  # contains a smaller circuit: not minimal
-            sub = D[:, subset]
-            u, sv, vt = np.linalg.svd(sub)
-            rank = int((sv > 1e-9).sum())
-            if rank != size - 1:
+            _u, sv, vt = np.linalg.svd(D[:, subset])
+            if int((sv > 1e-9).sum()) != size - 1:
                 continue
             v = vt[-1]
             if np.any(np.abs(v) < 1e-9):
@@ -389,8 +404,8 @@ def _circuits(D: np.ndarray, max_size: int) -> list[tuple[np.ndarray, np.ndarray
             v = v / v[0]
             if np.allclose(v, np.round(v), atol=1e-9):
                 v = np.round(v)  # relations have ±1 entries: circuits are integer, keep them exact
-            supports.append(set(subset))
-            found.append((np.array(subset), v))
+            supports.append(set(subset.tolist()))
+            found.append((subset, v))
     return found
 
 
