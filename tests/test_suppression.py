@@ -207,6 +207,21 @@ def test_cycle_proofs_take_each_target_as_far_as_its_best_cycle(seed):
         assert (hi[i], -lo[i]) == pytest.approx((rise, fall), abs=1e-9)
 
 
+def test_witness_points_are_kept_one_row_per_independent_block():
+    # a point that moves two blocks is kept as two rows, each the point within one block, so that
+    # a change of pattern in one block leaves the other standing; rows add back up to the point
+    rng = np.random.default_rng(3)
+    points = np.where(rng.random((3, 10)) < 0.5, rng.normal(size=(3, 10)), 0.0)
+    points[2] = 0.0  # a point that moves nothing is not kept
+    blocks = np.array([0, 0, 1, 1, 1, 2, 2, -1, 0, 2])
+    witnesses = S._Witnesses(10)
+    witnesses.add(points, blocks)
+    rows = witnesses.matrix().toarray()
+    expected = [np.where(blocks == b, p, 0.0) for p in points for b in (-1, 0, 1, 2) if np.any(p[blocks == b])]
+    assert rows.shape == (len(expected), 10)
+    assert np.array_equal(rows, np.array(expected))
+
+
 def test_witness_programs_split_along_independent_blocks(monkeypatch):
     # with the nation and both regions published, the areas of R1 and of R2 share no relation
     # with a free cell: two blocks, gathered into one program unless programs are kept small

@@ -577,15 +577,13 @@ class _Witnesses:
             # keep only those that do to 1e-6 of their own size (never a proof from a bad solve)
             residual = np.abs(relations @ points.T).max(axis=0) if relations.shape[0] else np.zeros(len(points))
             points = points[residual <= 1e-6 * np.maximum(1.0, np.abs(points).max(axis=1))]
-        for p in points:
-            nz = np.flatnonzero(p)
-            if blocks is not None:  # one row per block: entries sorted by block label
-                nz = nz[np.argsort(blocks[nz], kind="stable")]
-                labels = blocks[nz]
-                ptr = np.r_[0, np.flatnonzero(np.diff(labels)) + 1, len(nz)] if len(nz) else np.zeros(1, np.int64)
-            else:
-                ptr = np.array([0, len(nz)])
-            self.add_rows(sparse.csr_matrix((p[nz], nz, ptr), shape=(len(ptr) - 1, self.n)))
+        point, cell = np.nonzero(points)
+        if not len(point):
+            return
+        row = point
+        if blocks is not None:  # one row per point and block
+            _, row = np.unique(point * (int(blocks.max()) + 2) + blocks[cell] + 1, return_inverse=True)
+        self.add_rows(sparse.csr_matrix((points[point, cell], (row, cell)), shape=(int(row.max()) + 1, self.n)))
 
     def add_rows(self, rows: sparse.csr_matrix) -> None:
         rows = sparse.csr_matrix(rows)
@@ -793,10 +791,13 @@ def _width_cut(table, quantity, cell, rows, nu_max, nu_min, hidden) -> tuple[_Cu
     q = quantity
     lower, upper = _bounds(q, hidden)
 
-    def reduced(nu: np.ndarray, c_sign: float) -> np.ndarray:
+    def spread(nu: np.ndarray) -> np.ndarray:  # Mᵀν, once per program: the signs are cheap after
         full = np.zeros(M.shape[0])
         full[rows] = nu
-        rho = -(M.T @ full)
+        return M.T @ full
+
+    def reduced(m_nu: np.ndarray, sign: float, c_sign: float) -> np.ndarray:
+        rho = -sign * m_nu
         rho[cell] += c_sign
         return rho
 
@@ -810,9 +811,10 @@ def _width_cut(table, quantity, cell, rows, nu_max, nu_min, hidden) -> tuple[_Cu
         return alpha, beta, now
 
     best = None
+    m_max, m_min = spread(nu_max), spread(nu_min)
     for s_max in (1.0, -1.0):
         for s_min in (1.0, -1.0):
-            alpha, beta, now = combine(reduced(s_max * nu_max, -1.0), reduced(s_min * nu_min, 1.0))
+            alpha, beta, now = combine(reduced(m_max, s_max, -1.0), reduced(m_min, s_min, 1.0))
             if np.isfinite(now) and (best is None or now < best[2]):
                 best = (alpha, beta, now)
     if best is None:
