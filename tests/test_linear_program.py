@@ -87,6 +87,28 @@ def test_inequality_rows_and_unbounded_columns():
     assert unbounded.status in ("unbounded", "unbounded or infeasible") and unbounded.x is None
 
 
+@pytest.mark.parametrize("seed", range(4))
+def test_integer_columns_match_scipy_milp(seed):
+    """A small covering program like the choice of cells to hide (every row needs at least its
+    right-hand side from the columns in it): HiGHS's branch and cut here against scipy's milp, and
+    the integer optimum above the relaxation's, so the integrality did reach the solver."""
+    from scipy.optimize import Bounds, LinearConstraint, milp
+    rng = np.random.default_rng(seed)
+    A = (rng.random((12, 15)) < 0.3).astype(float)
+    A[np.arange(12), rng.integers(0, 15, 12)] = 1.0          # every row can be covered
+    rhs = np.full(12, 1.5)                                   # each row needs two columns
+    A[A.sum(axis=1) < 2, :2] = 1.0
+    cost = rng.uniform(1.0, 4.0, 15)
+    ours = LinearProgram(A, rhs, np.full(12, np.inf), np.zeros(15), np.ones(15), integer=np.ones(15, bool),
+                         relative_gap=1e-9).minimise(cost)
+    ref = milp(cost, constraints=LinearConstraint(A, rhs, np.inf), integrality=np.ones(15), bounds=Bounds(0, 1))
+    relaxed = LinearProgram(A, rhs, np.full(12, np.inf), np.zeros(15), np.ones(15)).minimise(cost)
+    assert ours.optimal and ref.status == 0
+    assert cost @ ours.x == pytest.approx(ref.fun, rel=1e-9)
+    assert np.allclose(ours.x, np.round(ours.x), atol=1e-9)
+    assert cost @ relaxed.x < ref.fun - 1e-6
+
+
 def test_errors_name_the_argument_and_shapes():
     A = sparse.csr_matrix(np.ones((2, 3)))
     with pytest.raises(ValueError, match=r"col_upper has shape \(2,\); the matrix \(2, 3\) needs \(3,\)"):

@@ -29,6 +29,9 @@ __all__ = ["LinearProgram", "Solution"]
 
 # HiGHS's simplex_strategy option: 4 = primal simplex (kSimplexStrategyPrimal)
 _PRIMAL_SIMPLEX = 4
+# passModel's codes: the matrix given column by column (MatrixFormat.kColwise), minimise (ObjSense)
+_COLUMN_WISE = int(highspy.MatrixFormat.kColwise)
+_MINIMISE = int(highspy.ObjSense.kMinimize)
 
 
 @dataclass(frozen=True)
@@ -63,29 +66,23 @@ class LinearProgram:
             if np.shape(values) != (size,):
                 raise ValueError(f"{name} has shape {np.shape(values)}; the matrix {A.shape} needs ({size},)")
         self.n_cols = n_cols
-        lp = highspy.HighsLp()
-        lp.num_col_, lp.num_row_ = n_cols, n_rows
-        lp.col_cost_ = np.zeros(n_cols)
-        lp.col_lower_ = np.asarray(col_lower, dtype=np.float64)
-        lp.col_upper_ = np.asarray(col_upper, dtype=np.float64)
-        lp.row_lower_ = np.asarray(row_lower, dtype=np.float64)
-        lp.row_upper_ = np.asarray(row_upper, dtype=np.float64)
-        lp.a_matrix_.format_ = highspy.MatrixFormat.kColwise
-        lp.a_matrix_.num_col_, lp.a_matrix_.num_row_ = n_cols, n_rows
-        lp.a_matrix_.start_ = A.indptr.astype(np.int32)
-        lp.a_matrix_.index_ = A.indices.astype(np.int32)
-        lp.a_matrix_.value_ = A.data
-        h = self._highs = highspy._Highs()
-        h.setOptionValue("output_flag", False)
-        if h.passModel(lp) == highspy.HighsStatus.kError:
-            raise ValueError("HiGHS refused the linear program (check the bounds: lower <= upper, no NaN)")
-        self._all = np.arange(n_cols, dtype=np.int32)
-        self._cost = np.zeros(n_cols)  # the costs HiGHS holds (passModel set them to 0)
         if integer is not None:
             integer = np.asarray(integer, dtype=bool)
             if integer.shape != (n_cols,):
                 raise ValueError(f"integer has shape {integer.shape}; the matrix {A.shape} needs ({n_cols},)")
-            h.changeColsIntegrality(n_cols, self._all, integer.astype(np.uint8))  # 1 = integer
+        h = self._highs = highspy._Highs()
+        h.setOptionValue("output_flag", False)
+        # the binding's array form of passModel: building a HighsLp field by field took five times
+        # as long (its vectors are converted one by one)
+        status = h.passModel(n_cols, n_rows, A.nnz, _COLUMN_WISE, _MINIMISE, 0.0, np.zeros(n_cols),
+                             np.asarray(col_lower, dtype=np.float64), np.asarray(col_upper, dtype=np.float64),
+                             np.asarray(row_lower, dtype=np.float64), np.asarray(row_upper, dtype=np.float64),
+                             A.indptr.astype(np.int32), A.indices.astype(np.int32), A.data,
+                             np.zeros(n_cols, dtype=np.int32) if integer is None else integer.astype(np.int32))
+        if status == highspy.HighsStatus.kError:
+            raise ValueError("HiGHS refused the linear program (check the bounds: lower <= upper, no NaN)")
+        self._cost = np.zeros(n_cols)  # the costs HiGHS holds (passModel set them to 0)
+        if integer is not None:
             if relative_gap is not None:
                 h.setOptionValue("mip_rel_gap", float(relative_gap))
         else:
