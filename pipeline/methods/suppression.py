@@ -392,7 +392,7 @@ def _circuits(D: np.ndarray, max_size: int) -> list[tuple[np.ndarray, np.ndarray
         every = every.reshape(-1, size)
         screened = [chunk[~((nonzero[:, chunk].sum(axis=2) == 1).any(axis=0))]
                     for chunk in np.array_split(every, max(1, len(every) // 50_000))]
-        for subset in np.concatenate(screened) if screened else every[:0]:
+        for subset in np.concatenate(screened):
             if any(s <= set(subset.tolist()) for s in supports):
                 continue  # contains a smaller circuit: not minimal
             _u, sv, vt = np.linalg.svd(D[:, subset])
@@ -771,11 +771,11 @@ class _Ranges:
         points = np.stack(points) if points else none
         if not np.isfinite(hi_v) or nu_max is None or nu_min is None:
             return lo_v, hi_v, None, np.inf, points
-        cut, bound = _width_cut(table, q, cell, rows, nu_max, nu_min, self.hidden)
+        cut, bound = _width_cut(table, q, cell, rows, nu_max, nu_min, lower, upper)
         return lo_v, hi_v, cut, bound, points
 
 
-def _width_cut(table, quantity, cell, rows, nu_max, nu_min, hidden) -> tuple[_Cut | None, float]:
+def _width_cut(table, quantity, cell, rows, nu_max, nu_min, lower, upper) -> tuple[_Cut | None, float]:
     """Capacity cut from the two programs' duals (Fischetti & Salazar-González 2000), and its
     value at the current pattern.
 
@@ -786,10 +786,10 @@ def _width_cut(table, quantity, cell, rows, nu_max, nu_min, hidden) -> tuple[_Cu
     pl_j)·z_j, so the bound is linear in z and holds for every pattern: a protecting pattern must
     lift it to the required width. With the duals of the exact programs it equals the width at
     the current pattern (strong duality). scipy's sign convention for the multipliers is settled
-    by evaluating both signs at the current pattern and keeping the tighter (both are valid)."""
+    by evaluating both signs at the current pattern and keeping the tighter (both are valid).
+    lower, upper: the cells' bounds under the current pattern (`_bounds`)."""
     M = table.relations
     q = quantity
-    lower, upper = _bounds(q, hidden)
 
     def spread(nu: np.ndarray) -> np.ndarray:  # Mᵀν, once per program: the signs are cheap after
         full = np.zeros(M.shape[0])
@@ -930,9 +930,10 @@ def _find_witnesses(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets
     idx = np.flatnonzero(hidden)
     lower, upper = _bounds(q, hidden)
     low_all, high_all = lower - q.value, upper - q.value
-    labels = _free_components(M, hidden)
-    adjacency = None
-    if radius is not None:
+    labels = adjacency = None  # whole components by their labels; a neighbourhood by adjacency
+    if radius is None:
+        labels = _free_components(M, hidden)
+    else:
         m = abs(M[:, idx])
         adjacency = (m.T @ m).tocsr()
     previous = None
@@ -1044,9 +1045,8 @@ def _cycle_proofs(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets: 
     counts = np.diff(through.indptr)
     segments = through.indptr[:-1][counts > 0]
     target_of = np.repeat(np.arange(len(segments)), counts[counts > 0])
-    unit = all(size is None for *_, size in table.cycle_rooms)  # every step ±1
     for side, sign in ((up_side, 1.0), (down_side, -1.0)):
-        amount = reach[side] if unit else reach[side] * np.abs(v)
+        amount = reach[side] * np.abs(v)
         most = np.maximum.reduceat(amount, segments)
         # the first entry of each target that reaches its target's most
         top = np.flatnonzero((amount == most[target_of]) & (amount > 0))
