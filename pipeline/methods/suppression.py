@@ -44,7 +44,8 @@ The audit (`audit_quantity`) proves, for every protected cell, that two sets of 
 cannot rule out differ in that cell by at least the required width (a lower bound on the width
 of its range), cheapest proof first:
 1. short cycles of the table (a unit's categories traded against a sibling unit's, rectangles in
-   a two-way table) whose cells are all hidden, moved as far as the bounds allow;
+   a two-way table) whose cells are all hidden, moved as far as the bounds allow, several added
+   up where one falls short;
 2. witness rounds: linear programs over a few copies of the hidden cells, each cell asked to come
    out high in one copy and low in another (first over whole linked components, then over the
    hidden cells within a few relations of the cells left, with the rounding slack of the published
@@ -134,6 +135,9 @@ _MILP_REACH = 2
 # many subsets of each size (a breakdown into many categories has millions; 2 million screen in
 # about a second).
 _CIRCUIT_SUBSETS = 2_000_000
+# Cycle proofs add up at most this many cycles per target and direction, best first (see
+# `_cycle_proofs`).
+_CYCLES_PER_TARGET = 12
 _NO_PATTERN = "no pattern satisfies the cuts"
 
 
@@ -1011,11 +1015,14 @@ def _programs(M: sparse.csr_matrix, cols: np.ndarray, todo: np.ndarray,
 def _cycle_proofs(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets: np.ndarray,
                   witnesses: _Witnesses) -> None:
     """Witnesses from the table's short cycles through the targets: moving along a cycle by t
-    keeps every relation, so with the largest t the bounds allow in each direction it gives two
-    points; for each target the best point up and the best point down are kept. No linear
-    program: this proves most cells at the finest level at almost no cost. A cycle through a
-    published cell moves no further than that cell's rounding interval allows (not at all for an
-    exact figure), so it rarely proves anything, but it is valid."""
+    keeps every relation, and so does a sum of such moves, as long as every cell stays within its
+    bounds. For each target, one point up and one point down: the cycles through it taken best
+    first (how far each alone moves the target), each moved as far as the bounds leave after the
+    ones before it, up to _CYCLES_PER_TARGET of them (the best one only, where it alone proves the
+    target up and down). No linear program: where every cell holds a few respondents (a rare
+    characteristic) one cycle moves a target little, the sum of a dozen moves it several times as
+    far. A cycle through a published cell moves no further than that cell's rounding interval
+    allows (not at all for an exact figure), so it rarely proves anything, but it is valid."""
     C = table.cycles
     if C is None or not C.shape[0] or not len(targets):
         return
@@ -1023,36 +1030,80 @@ def _cycle_proofs(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets: 
     through = table.cycles_by_cell[:, targets]      # per target: its cycles and its step in each
     if not through.nnz:
         return
-    # how far each cycle through a target can go, up (+t) and down (−t)
-    wanted = np.zeros(C.shape[0], dtype=bool)
+    n, n_cycles = table.n_cells, C.shape[0]
+    # how far each cycle through a target can go on its own, up (+t) and down (−t)
+    wanted = np.zeros(n_cycles, dtype=bool)
     wanted[through.indices] = True
     lower, upper = _bounds(q, hidden)
-    room = np.concatenate([upper - q.value, q.value - lower])
-    reach = np.zeros(2 * C.shape[0])   # [+t of every cycle, −t of every cycle]
+    room_up, room_down = upper - q.value, q.value - lower
+    room = np.concatenate([room_up, room_down])
+    reach = np.zeros(2 * n_cycles)   # [+t of every cycle, −t of every cycle]
     for rows, plus, minus, size in table.cycle_rooms:
         pick = np.flatnonzero(wanted[rows])
         if len(pick) < len(rows) // 2:
             rows, plus, minus = rows[pick], plus[:, pick], minus[:, pick]
             size = None if size is None else size[:, pick]
-        for offset, where in ((0, plus), (C.shape[0], minus)):
+        for offset, where in ((0, plus), (n_cycles, minus)):
             rooms = room[where] if size is None else room[where] / size
             most = np.minimum.reduce(rooms, axis=0)
             reach[offset + rows] = np.where(np.isfinite(most), np.maximum(most, 0.0), 0.0)
-    # per target entry: how far its cycle takes the target up and down
-    row, v = through.indices, through.data
-    up_side = row + C.shape[0] * (v < 0)      # a cycle lowering the target raises it run backwards
-    down_side = row + C.shape[0] * (v > 0)
+    # per (target, cycle) entry and direction: how far the cycle alone takes the target
     counts = np.diff(through.indptr)
-    segments = through.indptr[:-1][counts > 0]
-    target_of = np.repeat(np.arange(len(segments)), counts[counts > 0])
-    for side, sign in ((up_side, 1.0), (down_side, -1.0)):
-        amount = reach[side] * np.abs(v)
-        most = np.maximum.reduceat(amount, segments)
-        # the first entry of each target that reaches its target's most
-        top = np.flatnonzero((amount == most[target_of]) & (amount > 0))
-        best = top[np.r_[True, target_of[top[1:]] != target_of[top[:-1]]]] if len(top) else top
-        if len(best):
-            witnesses.add_rows(sparse.diags(reach[side[best]] * sign * np.sign(v[best])) @ C[row[best]])
+    filled = counts > 0
+    target_of = np.repeat(np.arange(len(targets)), counts)
+    cycle, step = through.indices, through.data
+    amounts, best = [], []
+    for sign in (1.0, -1.0):
+        side = cycle + n_cycles * (sign * step < 0)   # a cycle lowering the target raises it run backwards
+        amounts.append(reach[side] * np.abs(step))
+        most = np.zeros(len(targets))
+        most[filled] = np.maximum.reduceat(amounts[-1], through.indptr[:-1][filled])
+        best.append(most)
+    alone = _reaches(best[0] + best[1], q.required[targets])
+    points = []
+    for sign, amount, most in zip((1.0, -1.0), amounts, best):
+        # the best cycle of every target; the next best too where the best alone falls short
+        use = np.flatnonzero((amount > 0) & (~alone[target_of] | (amount == most[target_of])))
+        if not len(use):
+            continue
+        # rank within the target, furthest first (ties in entry order): one stable sort on
+        # target + (1 − amount / best) orders by target, then by amount descending
+        key = target_of[use] + 0.5 * (1.0 - amount[use] / most[target_of[use]])
+        use = use[np.argsort(key, kind="stable")]
+        new_target = np.r_[True, target_of[use][1:] != target_of[use][:-1]]
+        heads = np.flatnonzero(new_target)
+        rank = np.arange(len(use)) - np.repeat(heads, np.diff(np.r_[heads, len(use)]))
+        keep = (rank == 0) | ((rank < _CYCLES_PER_TARGET) & ~alone[target_of[use]])
+        use, rank = use[keep], rank[keep]
+        order = np.argsort(rank, kind="stable")                 # pass by pass: every target's k-th cycle
+        use, rank = use[order], rank[order]
+        rows = cycle[use]
+        lengths = np.diff(C.indptr)[rows]
+        entry = np.repeat(np.arange(len(use)), lengths)        # the cells of each used cycle
+        at = np.arange(int(lengths.sum())) - np.repeat(np.cumsum(lengths) - lengths, lengths) \
+            + np.repeat(C.indptr[rows], lengths)
+        cell = C.indices[at]
+        delta = C.data[at] * (sign * np.sign(step[use]))[entry]
+        # each target's own copy of the bounds of the cells its cycles move
+        slots, slot = np.unique(target_of[use][entry] * n + cell, return_inverse=True)
+        up, down, moved = room_up[slots % n], room_down[slots % n], np.zeros(len(slots))
+        passes = np.searchsorted(rank[entry], np.arange(_CYCLES_PER_TARGET + 1))
+        for a, b in zip(passes[:-1], passes[1:]):
+            if a == b:
+                break
+            sl, d, e = slot[a:b], delta[a:b], entry[a:b]
+            starts = np.flatnonzero(np.r_[True, e[1:] != e[:-1]])
+            t = np.minimum.reduceat(np.where(d > 0, up[sl], down[sl]) / np.abs(d), starts)
+            t = np.where(np.isfinite(t), np.maximum(t, 0.0), 0.0)
+            change = np.repeat(t, np.diff(np.r_[starts, len(e)])) * d
+            up[sl] -= change
+            down[sl] += change
+            moved[sl] += change
+        keep = moved != 0
+        points.append((slots[keep] // n * 2 + (sign < 0), slots[keep] % n, moved[keep]))
+    if points:
+        row, col, val = (np.concatenate(parts) for parts in zip(*points))
+        witnesses.add_rows(sparse.csr_matrix((val, (row, col)), shape=(2 * len(targets), n)))
 
 
 def _reaches(width, required) -> np.ndarray:
