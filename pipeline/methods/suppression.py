@@ -1075,35 +1075,44 @@ def _cycle_proofs(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets: 
         rank = np.arange(len(use)) - np.repeat(heads, np.diff(np.r_[heads, len(use)]))
         keep = (rank == 0) | ((rank < _CYCLES_PER_TARGET) & ~alone[target_of[use]])
         use, rank = use[keep], rank[keep]
-        order = np.argsort(rank, kind="stable")                 # pass by pass: every target's k-th cycle
-        use, rank = use[order], rank[order]
-        rows = cycle[use]
-        lengths = np.diff(C.indptr)[rows]
-        entry = np.repeat(np.arange(len(use)), lengths)        # the cells of each used cycle
-        at = np.arange(int(lengths.sum())) - np.repeat(np.cumsum(lengths) - lengths, lengths) \
-            + np.repeat(C.indptr[rows], lengths)
-        cell = C.indices[at]
-        delta = C.data[at] * (sign * np.sign(step[use]))[entry]
-        # each target's own copy of the bounds of the cells its cycles move
-        slots, slot = np.unique(target_of[use][entry] * n + cell, return_inverse=True)
-        up, down, moved = room_up[slots % n], room_down[slots % n], np.zeros(len(slots))
-        passes = np.searchsorted(rank[entry], np.arange(_CYCLES_PER_TARGET + 1))
-        for a, b in zip(passes[:-1], passes[1:]):
-            if a == b:
-                break
-            sl, d, e = slot[a:b], delta[a:b], entry[a:b]
-            starts = np.flatnonzero(np.r_[True, e[1:] != e[:-1]])
-            t = np.minimum.reduceat(np.where(d > 0, up[sl], down[sl]) / np.abs(d), starts)
-            t = np.where(np.isfinite(t), np.maximum(t, 0.0), 0.0)
-            change = np.repeat(t, np.diff(np.r_[starts, len(e)])) * d
-            up[sl] -= change
-            down[sl] += change
-            moved[sl] += change
-        keep = moved != 0
-        points.append((slots[keep] // n * 2 + (sign < 0), slots[keep] % n, moved[keep]))
+        owner, cell, moved = _cycle_sums(C, cycle[use], sign * np.sign(step[use]), target_of[use], rank,
+                                         room_up, room_down)
+        points.append((owner * 2 + (sign < 0), cell, moved))
     if points:
         row, col, val = (np.concatenate(parts) for parts in zip(*points))
         witnesses.add_rows(sparse.csr_matrix((val, (row, col)), shape=(2 * len(targets), n)))
+
+
+def _cycle_sums(C: sparse.csr_matrix, rows: np.ndarray, orientation: np.ndarray, owner: np.ndarray,
+                rank: np.ndarray, room_up: np.ndarray, room_down: np.ndarray):
+    """Sums of cycles, one per owner: the cycles `rows` of C (each run forwards or backwards, by
+    `orientation`) belong to owners and are moved in `rank` order, each by the largest step that
+    what the owner's earlier cycles left of the cells' rooms allows. Every owner has at most one
+    cycle of each rank, so a rank is one vectorised pass. Returns (owner, cell, deviation) of the
+    sums' nonzero entries."""
+    n = len(room_up)
+    order = np.argsort(rank, kind="stable")
+    rows, orientation, owner, rank = rows[order], orientation[order], owner[order], rank[order]
+    lengths = np.diff(C.indptr)[rows]
+    entry = np.repeat(np.arange(len(rows)), lengths)           # the cells of each cycle
+    at = np.arange(int(lengths.sum())) - np.repeat(np.cumsum(lengths) - lengths, lengths) \
+        + np.repeat(C.indptr[rows], lengths)
+    delta = C.data[at] * orientation[entry]
+    # each owner's own copy of the rooms of the cells its cycles move
+    slots, slot = np.unique(owner[entry] * n + C.indices[at], return_inverse=True)
+    up, down, moved = room_up[slots % n], room_down[slots % n], np.zeros(len(slots))
+    passes = np.searchsorted(rank[entry], np.arange(int(rank.max()) + 2))
+    for a, b in zip(passes[:-1], passes[1:]):
+        sl, d, e = slot[a:b], delta[a:b], entry[a:b]
+        starts = np.flatnonzero(np.r_[True, e[1:] != e[:-1]])
+        t = np.minimum.reduceat(np.where(d > 0, up[sl], down[sl]) / np.abs(d), starts)
+        t = np.where(np.isfinite(t), np.maximum(t, 0.0), 0.0)
+        change = np.repeat(t, np.diff(np.r_[starts, len(e)])) * d
+        up[sl] -= change
+        down[sl] += change
+        moved[sl] += change
+    keep = moved != 0
+    return slots[keep] // n, slots[keep] % n, moved[keep]
 
 
 def _reaches(width, required) -> np.ndarray:
