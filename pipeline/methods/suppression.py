@@ -1093,13 +1093,11 @@ def _cycle_sums(C: sparse.csr_matrix, rows: np.ndarray, orientation: np.ndarray,
     n = len(room_up)
     order = np.argsort(rank, kind="stable")
     rows, orientation, owner, rank = rows[order], orientation[order], owner[order], rank[order]
-    lengths = np.diff(C.indptr)[rows]
-    entry = np.repeat(np.arange(len(rows)), lengths)           # the cells of each cycle
-    at = np.arange(int(lengths.sum())) - np.repeat(np.cumsum(lengths) - lengths, lengths) \
-        + np.repeat(C.indptr[rows], lengths)
-    delta = C.data[at] * orientation[entry]
+    cycles = C[rows]                                           # in pass order, one row per cycle
+    entry = np.repeat(np.arange(len(rows)), np.diff(cycles.indptr))
+    delta = cycles.data * orientation[entry]
     # each owner's own copy of the rooms of the cells its cycles move
-    slots, slot = np.unique(owner[entry] * n + C.indices[at], return_inverse=True)
+    slots, slot = np.unique(owner[entry] * n + cycles.indices, return_inverse=True)
     up, down, moved = room_up[slots % n], room_down[slots % n], np.zeros(len(slots))
     passes = np.searchsorted(rank[entry], np.arange(int(rank.max()) + 2))
     for a, b in zip(passes[:-1], passes[1:]):
