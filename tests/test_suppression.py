@@ -421,6 +421,29 @@ def test_rounding_intervals_widen_the_range_by_hand():
     assert S.feasible_range(table, rounded, hidden, 3)[:2] == (pytest.approx(0, abs=1e-7), pytest.approx(50))
 
 
+@pytest.mark.parametrize("areas, side", [([30, 20, 50, 20, 25, 30], "min"), ([3, 50, 50, 20, 25, 30], "max")])
+def test_a_cell_one_side_of_its_range_proves_costs_one_program(areas, side, monkeypatch):
+    # A1 and A2 hidden, published at face value: y1 + y2 = A1 + A2, so A1 in [0, A1 + A2] by hand.
+    # A1 = 30, 10 required: it can fall to 0, 30 wide on that side alone, so only the minimum is
+    # solved. A1 = 3: the maximum, 53, gives 50 alone. The side skipped is reported as the value
+    # itself (nothing witnessed beyond it), not as exact, and without a cut.
+    table, values = hierarchy(areas)
+    hidden = np.zeros(9, bool)
+    hidden[[3, 4]] = True
+    q = exact_quantity(values, np.zeros(9))
+    solves = []
+    original = S.LinearProgram.minimise
+    monkeypatch.setattr(S.LinearProgram, "minimise", lambda self, c: solves.append(c) or original(self, c))
+    ranges = S._Ranges(table, q, hidden, free=hidden)
+    lo, hi, cut, _, points, exact = ranges.of(3, (10.0, 0.0, 0.0))
+    assert len(solves) == 1 and len(points) == 1 and cut is None and not exact
+    a1, a2 = areas[0], areas[1]
+    assert (lo, hi) == ((pytest.approx(0, abs=1e-7), a1) if side == "min" else (a1, pytest.approx(a1 + a2)))
+    lo, hi, cut, _, points, exact = ranges.of(3)  # nothing to prove: both sides, the exact range
+    assert len(solves) == 3 and exact and cut is not None
+    assert (lo, hi) == (pytest.approx(0, abs=1e-7), pytest.approx(a1 + a2))
+
+
 def test_audit_fails_a_pattern_whose_partner_is_too_small():
     # A1 = 3 with only A2 = 2 beside it: A1 in [0, 5], 5 wide, short of the 10 required
     table, values = hierarchy([3, 2, 50, 20, 25, 30])

@@ -54,7 +54,9 @@ of its range), cheapest proof first:
    linked to it only), then over every cell within a few relations of those, then over the whole
    table, published figures free within their rounding intervals (HiGHS, `linear_program`): each
    step a proof, or a cut valid for the full reader model when its dual bound falls short, or the
-   exact range when its width meets that bound; the whole table is the final word.
+   exact range when its width meets that bound; the whole table is the final word. The side that
+   can reach the width alone goes first, and the other is skipped when the first, with the points
+   found so far, proves the cell; a cell those points prove needs no program at all.
 Proofs are kept and reused while the cells they move keep their bounds; the values of the proofs
 are the audit's ranges (`lower`, `upper`): a reader's full range contains them.
 """
@@ -574,7 +576,8 @@ class _Witnesses:
         self._matrix = sparse.csr_matrix((0, n))
         self._seen: dict[bytes, tuple[int, np.ndarray, np.ndarray]] = {}  # pattern -> rows checked, lo, hi
 
-    def add(self, points: np.ndarray, blocks: np.ndarray | None = None, *, relations=None) -> None:
+    def add(self, points: np.ndarray, blocks: np.ndarray | None = None, *, relations=None) -> np.ndarray:
+        """Keeps the points (rows over every cell); returns those kept."""
         points = np.atleast_2d(points)
         if relations is not None and len(points):
             # a point from a linear program satisfies the relations to the solver's tolerance;
@@ -583,11 +586,12 @@ class _Witnesses:
             points = points[residual <= 1e-6 * np.maximum(1.0, np.abs(points).max(axis=1))]
         point, cell = np.nonzero(points)
         if not len(point):
-            return
+            return points
         row = point
         if blocks is not None:  # one row per point and block
             _, row = np.unique(point * (int(blocks.max()) + 2) + blocks[cell] + 1, return_inverse=True)
         self.add_rows(sparse.csr_matrix((points[point, cell], (row, cell)), shape=(int(row.max()) + 1, self.n)))
+        return points
 
     def add_rows(self, rows: sparse.csr_matrix) -> None:
         rows = sparse.csr_matrix(rows)
@@ -598,32 +602,6 @@ class _Witnesses:
             self._matrix = sparse.vstack([self._matrix] + self._pending, format="csr")
             self._pending = []
         return self._matrix
-
-    def take(self, other: "_Witnesses", target: Quantity, hidden: np.ndarray, start: int = 0) -> int:
-        """Points of another quantity of the same table, each scaled to fit this quantity's
-        bounds, are points of this one too (the relations are the same, and t·p satisfies them
-        whenever p does): each point p gives t⁺·p and −t⁻·p with the largest t that stay within
-        the bounds. Takes the other's points from row `start` on; returns where it stopped."""
-        m = other.matrix()[start:]
-        end = start + m.shape[0]
-        if not m.shape[0] or not m.nnz:
-            return end
-        lower, upper = _bounds(target, hidden)
-        low, high = (lower - target.value)[m.indices], (upper - target.value)[m.indices]
-        d = m.data
-        with np.errstate(divide="ignore", invalid="ignore"):
-            up = np.where(d > 0, high / d, low / d)        # room for +t·p, cell by cell
-            down = np.where(d > 0, -low / d, -high / d)    # room for −t·p
-        starts = m.indptr[:-1]
-        filled = np.diff(m.indptr) > 0
-        for room, sign in ((up, 1.0), (down, -1.0)):
-            t = np.full(m.shape[0], 0.0)
-            t[filled] = np.minimum.reduceat(np.nan_to_num(room, nan=0.0, posinf=np.inf), starts[filled])
-            t = np.where(np.isfinite(t), t, 0.0)
-            keep = t > 0
-            if keep.any():
-                self.add_rows(sparse.diags(sign * t[keep]) @ m[keep])
-        return end
 
     def observed(self, q: Quantity, hidden: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Per cell, the lowest and highest deviation among the points valid under `hidden`
@@ -689,7 +667,7 @@ def feasible_range(table: LinkedTable, quantity: Quantity, hidden: np.ndarray, c
     (witnesses for later patterns)."""
     hidden = np.asarray(hidden, dtype=bool)
     lower, upper = _bounds(quantity, hidden)
-    lo, hi, cut, _bound, points = _Ranges(table, quantity, hidden, free=upper > lower).of(cell)
+    lo, hi, cut, _bound, points, _exact = _Ranges(table, quantity, hidden, free=upper > lower).of(cell)
     return lo, hi, cut, points
 
 
@@ -745,24 +723,34 @@ class _Ranges:
             self._programs[label] = (cols, rows, program)
         return self._programs[label]
 
-    def of(self, cell: int):
-        """(lower, upper, cut, bound, points) for one cell."""
+    def of(self, cell: int, proof: tuple[float, float, float] | None = None):
+        """(lower, upper, cut, bound, points, exact) for one cell. `proof`: (required width, lowest
+        and highest deviation of the cell already witnessed): the side that can reach the width on
+        its own is solved first (the minimum when the cell's value is at least the width: it can
+        fall to 0), and the other is skipped when the first, with what is witnessed, proves the
+        cell. Then lower or upper is the witnessed value, there is no cut and exact is False."""
         table, q, lower, upper = self.table, self.q, self.lower, self.upper
         none = np.zeros((0, table.n_cells))
         if not self.free[cell]:
-            return float(lower[cell]), float(upper[cell]), None, 0.0, none
+            return float(lower[cell]), float(upper[cell]), None, 0.0, none, True
         cols, rows, program = self._program(cell)
         if program is None:
-            return float(lower[cell]), float(upper[cell]), None, float(upper[cell] - lower[cell]), none
+            return float(lower[cell]), float(upper[cell]), None, float(upper[cell] - lower[cell]), none, True
         k = len(cols)
         target = int(np.searchsorted(cols, cell))
-        found, points = [], []
-        for sign in (-1.0, 1.0):  # maximise, then minimise
+        value = float(q.value[cell])
+        required, seen_low, seen_high = proof if proof is not None else (np.inf, 0.0, 0.0)
+        found = {-1.0: (value + seen_high, None), 1.0: (value + seen_low, None)}  # sign: (value, duals)
+        points, solved = [], 0
+        for sign in ((1.0, -1.0) if value >= required else (-1.0, 1.0)):  # minimise (+1), maximise (−1)
+            if solved and _reaches(found[-1.0][0] - found[1.0][0], required):
+                break
+            solved += 1
             c = np.zeros(k)
             c[target] = sign
             solution = program.minimise(c)
             if solution.status in ("unbounded", "unbounded or infeasible"):  # d = 0 is feasible: unbounded
-                found.append((np.inf if sign < 0 else -np.inf, None))
+                found[sign] = (np.inf if sign < 0 else -np.inf, None)
                 continue
             if not solution.optimal:
                 raise RuntimeError(f"audit linear program for cell {cell} ({q.name}) failed: {solution.status}")
@@ -770,13 +758,13 @@ class _Ranges:
             point = np.zeros(table.n_cells)
             point[cols] = d
             points.append(point)
-            found.append((float(q.value[cell] + d[target]), solution.row_dual))
-        (hi_v, nu_max), (lo_v, nu_min) = found
+            found[sign] = (value + float(d[target]), solution.row_dual)
+        (hi_v, nu_max), (lo_v, nu_min) = found[-1.0], found[1.0]
         points = np.stack(points) if points else none
-        if not np.isfinite(hi_v) or nu_max is None or nu_min is None:
-            return lo_v, hi_v, None, np.inf, points
+        if nu_max is None or nu_min is None:
+            return lo_v, hi_v, None, np.inf, points, solved == 2
         cut, bound = _width_cut(table, q, cell, rows, nu_max, nu_min, lower, upper)
-        return lo_v, hi_v, cut, bound, points
+        return lo_v, hi_v, cut, bound, points, solved == 2
 
 
 def _width_cut(table, quantity, cell, rows, nu_max, nu_min, lower, upper) -> tuple[_Cut | None, float]:
@@ -1162,13 +1150,20 @@ def audit_quantity(table: LinkedTable, quantity: Quantity, hidden, *, witnesses:
         models = [_Ranges(table, q, hidden, free=hidden & b_free),
                   _Ranges(table, q, hidden, free=hidden & b_free, widen=b_free),
                   _Ranges(table, q, hidden, free=b_free)]
+        lo_w, hi_w = witnesses.observed(q, hidden)
         for i in linked[~proven[linked]]:
+            if _reaches(hi_w[i] - lo_w[i], q.required[i]):
+                proven[i] = True
+                continue
             for step, model in enumerate(models):
-                lo_i, hi_i, cut, bound, points = model.of(int(i))
-                witnesses.add(points, relations=table.relations)
+                lo_i, hi_i, cut, bound, points, both = model.of(int(i), (q.required[i], lo_w[i], hi_w[i]))
+                points = witnesses.add(points, relations=table.relations)
+                if len(points):  # later cells may be proven by these points already
+                    lo_w = np.minimum(lo_w, points.min(axis=0))
+                    hi_w = np.maximum(hi_w, points.max(axis=0))
                 width = hi_i - lo_i
                 tight = cut is not None and bound <= width + 1e-6 * max(1.0, width) + 1e-6
-                final = tight or step == len(models) - 1
+                final = both and (tight or step == len(models) - 1)
                 if final:
                     lower[i], upper[i], exact[i] = lo_i, hi_i, True
                 if _reaches(width, q.required[i]):
@@ -1346,20 +1341,6 @@ def protect_table(table: LinkedTable, *, quantities: list[Quantity], withheld, e
         for q in quantities:
             rows, rhs = _relation_rows(table, q, fixed, eligible)
             capacity += [(cols, gains, b) for (cols, gains), b in zip(rows, rhs)]
-        # witnesses among the cells hidden whatever is chosen stay valid in every round; each
-        # quantity first takes what the others found, scaled, and searches only for the rest
-        for k, q in enumerate(quantities):
-            for other in quantities[:k]:
-                witnesses[q.name].take(witnesses[other.name], q, fixed)
-            targets = np.flatnonzero(fixed & (q.required > 0))
-            proven = np.zeros(n, dtype=bool)
-            _prove(q, witnesses[q.name], fixed, targets, proven)
-            _cycle_proofs(table, q, fixed, targets[~proven[targets]], witnesses[q.name])
-            _prove(q, witnesses[q.name], fixed, targets, proven)
-            rng = np.random.default_rng(0)
-            # whole components only: the stragglers are left to the audits, where the cells chosen
-            # by then widen their ranges (neighbourhood rounds here proved few at much cost)
-            _find_witnesses(table, q, fixed, targets, witnesses[q.name], proven, rng, stop_share=0.1)
         kept = np.zeros(n, dtype=bool)
         for round_no in range(1, _MAX_CUT_ROUNDS + 1):
             remaining = deadline - time.perf_counter()
