@@ -444,6 +444,24 @@ def test_a_cell_one_side_of_its_range_proves_costs_one_program(areas, side, monk
     assert (lo, hi) == (pytest.approx(0, abs=1e-7), pytest.approx(a1 + a2))
 
 
+def test_a_cell_a_reader_cannot_bound_above_passes_with_an_unbounded_range():
+    # A1, R1 and the nation hidden, with no upper bound known for a hidden count: A1 + t, R1 + t,
+    # nation + t keep every relation for any t >= −3, so A1 can be anything from 0 up. The
+    # program for its maximum is unbounded and yields no point; the audit takes that as the proof.
+    table, values = hierarchy([3, 20, 50, 20, 25, 30])
+    required = np.zeros(9)
+    required[3] = 10
+    q = exact_quantity(values, required)
+    q = S.Quantity(name="count", value=q.value, published_lower=q.published_lower,
+                   published_upper=q.published_upper, hidden_lower=q.hidden_lower,
+                   hidden_upper=np.full(9, np.inf), required=required)
+    hidden = np.zeros(9, bool)
+    hidden[[0, 1, 3]] = True
+    audit, cuts = S.audit_quantity(table, q, hidden)
+    assert audit.ok.all() and not cuts
+    assert audit.upper[3] == np.inf and audit.lower[3] <= 3
+
+
 def test_audit_fails_a_pattern_whose_partner_is_too_small():
     # A1 = 3 with only A2 = 2 beside it: A1 in [0, 5], 5 wide, short of the 10 required
     table, values = hierarchy([3, 2, 50, 20, 25, 30])

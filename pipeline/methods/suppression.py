@@ -613,7 +613,7 @@ class _Witnesses:
         if done < m.shape[0]:  # only the points added since this pattern was last asked about
             new = m[done:]
             lower, upper = _bounds(q, hidden)
-            tol = 1e-7 * np.maximum(1.0, np.abs(q.value))
+            tol = _tolerance(q)
             cols = new.indices
             bad = ((new.data < lower[cols] - q.value[cols] - tol[cols])
                    | (new.data > upper[cols] - q.value[cols] + tol[cols]))
@@ -626,6 +626,12 @@ class _Witnesses:
             np.maximum.at(hi, cols[entries], new.data[entries])
             self._seen[key] = (m.shape[0], lo, hi)
         return lo, hi
+
+
+def _tolerance(q: Quantity) -> np.ndarray:
+    """How far a point may stray outside a cell's bounds and still count (linear programs keep
+    their bounds to HiGHS's feasibility tolerance, 1e-7)."""
+    return 1e-7 * np.maximum(1.0, np.abs(q.value))
 
 
 def _bound_pairs(q: Quantity) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
@@ -1130,6 +1136,7 @@ def audit_quantity(table: LinkedTable, quantity: Quantity, hidden, *, witnesses:
                   _Ranges(table, q, hidden, free=hidden & b_free, widen=b_free),
                   _Ranges(table, q, hidden, free=b_free)]
         lo_w, hi_w = witnesses.observed(q, hidden)
+        room_lo, room_hi = b_lo - q.value - _tolerance(q), b_hi - q.value + _tolerance(q)
         for i in linked[~proven[linked]]:
             if _reaches(hi_w[i] - lo_w[i], q.required[i]):
                 proven[i] = True
@@ -1137,22 +1144,23 @@ def audit_quantity(table: LinkedTable, quantity: Quantity, hidden, *, witnesses:
             for step, model in enumerate(models):
                 lo_i, hi_i, cut, bound, points, both = model.of(int(i), (q.required[i], lo_w[i], hi_w[i]))
                 points = witnesses.add(points, relations=table.relations)
+                points = points[np.all((points >= room_lo) & (points <= room_hi), axis=1)]  # as `observed`
                 if len(points):  # later cells may be proven by these points already
                     lo_w = np.minimum(lo_w, points.min(axis=0))
                     hi_w = np.maximum(hi_w, points.max(axis=0))
+                # values the programs reached (or an unbounded side: a reader has no bound there)
+                lower[i], upper[i] = np.fmin(lower[i], lo_i), np.fmax(upper[i], hi_i)
                 width = hi_i - lo_i
                 tight = cut is not None and bound <= width + 1e-6 * max(1.0, width) + 1e-6
                 final = both and (tight or step == len(models) - 1)
-                if final:
-                    lower[i], upper[i], exact[i] = lo_i, hi_i, True
+                exact[i] = final
                 if _reaches(width, q.required[i]):
                     proven[i] = True
                     break
                 if final:
                     cuts.append(cut if tight else _plain_cut(table, hidden, int(i), q))
                     break
-                if cut is not None and not _reaches(bound, q.required[i]):
-                    lower[i], upper[i] = lo_i, hi_i  # short even with the rounding slack: a cut
+                if cut is not None and not _reaches(bound, q.required[i]):  # short even with the rounding slack
                     cuts.append(cut)
                     break
     lo, hi = witnesses.observed(q, hidden)
