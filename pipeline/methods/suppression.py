@@ -1022,17 +1022,23 @@ def _cycle_proofs(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets: 
             rooms = room[where] if size is None else room[where] / size
             most = np.minimum.reduce(rooms, axis=0)
             reach[offset + rows] = np.where(np.isfinite(most), np.maximum(most, 0.0), 0.0)
-    # per (target, cycle) entry and direction: how far the cycle alone takes the target
-    counts = np.diff(through.indptr)
-    filled = counts > 0
-    target_of = np.repeat(np.arange(len(targets)), counts)
+    # per (target, cycle) entry and direction: how far the cycle alone takes the target; the
+    # cycles that cannot move at all (through an exact published figure, say) are left out
+    target_of = np.repeat(np.arange(len(targets)), np.diff(through.indptr))
     cycle, step = through.indices, through.data
+    moves = ((reach[:n_cycles] > 0) | (reach[n_cycles:] > 0))[cycle]
+    target_of, cycle, step = target_of[moves], cycle[moves], step[moves]
+    if not len(cycle):
+        return
+    counts = np.bincount(target_of, minlength=len(targets))
+    filled = counts > 0
+    starts = np.r_[0, np.cumsum(counts)[:-1]]
     amounts, best = [], []
     for sign in (1.0, -1.0):
         side = cycle + n_cycles * (sign * step < 0)   # a cycle lowering the target raises it run backwards
         amounts.append(reach[side] * np.abs(step))
         most = np.zeros(len(targets))
-        most[filled] = np.maximum.reduceat(amounts[-1], through.indptr[:-1][filled])
+        most[filled] = np.maximum.reduceat(amounts[-1], starts[filled])
         best.append(most)
     alone = _reaches(best[0] + best[1], q.required[targets])
     points = []
