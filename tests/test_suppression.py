@@ -250,13 +250,16 @@ def test_witness_programs_split_along_independent_blocks(monkeypatch):
     # with a free cell: two blocks, gathered into one program unless programs are kept small
     table, _ = hierarchy([5, 6, 7, 8, 9, 10])
     areas, todo = np.arange(3, 9), np.array([3, 6])
-    parts, components = S._programs(table.relations, areas, todo)
+    hidden = np.zeros(9, bool)
+    hidden[areas] = True
+    labels = S._free_components(table.relations, hidden)[areas]
+    parts, components = S._programs(areas, todo, labels)
     assert [p.tolist() for p in parts] == [[3, 4, 5, 6, 7, 8]]
     assert len(set(components[0][:3])) == 1 and components[0][0] != components[0][3]
     monkeypatch.setattr(S, "_PROGRAM_CELLS", 1)
-    parts, _ = S._programs(table.relations, areas, todo)
+    parts, _ = S._programs(areas, todo, labels)
     assert [p.tolist() for p in parts] == [[3, 4, 5], [6, 7, 8]]
-    parts, _ = S._programs(table.relations, areas, np.array([7]))   # a block without a target: left out
+    parts, _ = S._programs(areas, np.array([7]), labels)   # a block without a target: left out
     assert [p.tolist() for p in parts] == [[6, 7, 8]]
 
 

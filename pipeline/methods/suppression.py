@@ -944,7 +944,7 @@ def _find_witnesses(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets
             up = np.where(flat, rng.integers(0, k, len(todo)), up)
             down = np.where(flat | (down == up), (up + rng.integers(1, k, len(todo))) % k, down)
         cols = idx[np.isin(labels[idx], labels[todo])]
-        parts, components = _programs(M, cols, todo, labels[cols])
+        parts, components = _programs(cols, todo, labels[cols])
         previous = np.zeros((k, table.n_cells))
         for cols in parts:
             mine = np.isin(todo, cols)
@@ -962,17 +962,11 @@ def _find_witnesses(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets
             return
 
 
-def _programs(M: sparse.csr_matrix, cols: np.ndarray, todo: np.ndarray,
-              component: np.ndarray | None = None) -> tuple[list[np.ndarray], list[np.ndarray]]:
-    """The cells `cols` split into independent programs: the linked components among them that
-    hold a cell of `todo`, gathered until a program has _PROGRAM_CELLS cells (the simplex's work
-    grows faster than the program, but each program has a fixed cost too). `component`: each
-    cell's component label when already known. Returns each program's cells (ascending) and the
-    component of each of them."""
-    if component is None:
-        chosen = np.zeros(M.shape[1], dtype=bool)
-        chosen[cols] = True
-        component = _free_components(M, chosen)[cols]
+def _programs(cols: np.ndarray, todo: np.ndarray, component: np.ndarray) -> tuple[list[np.ndarray], list[np.ndarray]]:
+    """The cells `cols` split into independent programs: the linked components among them
+    (`component`, each cell's label) that hold a cell of `todo`, gathered until a program has
+    _PROGRAM_CELLS cells (the simplex's work grows faster than the program, but each program has
+    a fixed cost too). Returns each program's cells (ascending) and the component of each."""
     keep = np.isin(component, component[np.isin(cols, todo)])
     cols, component = cols[keep], component[keep]
     labels, sizes = np.unique(component, return_counts=True)
