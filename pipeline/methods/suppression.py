@@ -591,7 +591,12 @@ class _Witnesses:
         row = point
         if blocks is not None:  # one row per point and block
             _, row = np.unique(point * (int(blocks.max()) + 2) + blocks[cell] + 1, return_inverse=True)
-        self.add_rows(sparse.csr_matrix((points[point, cell], (row, cell)), shape=(int(row.max()) + 1, self.n)))
+            order = np.argsort(row, kind="stable")
+            row, point, cell = row[order], point[order], cell[order]
+        # the compressed rows directly: every row holds a nonzero, and scipy's general
+        # constructor and the empty-row filter of `add_rows` were most of the time of a call
+        indptr = np.r_[0, np.cumsum(np.bincount(row))]
+        self._pending.append(sparse.csr_matrix((points[point, cell], cell, indptr), shape=(len(indptr) - 1, self.n)))
         return points
 
     def add_rows(self, rows: sparse.csr_matrix) -> None:
