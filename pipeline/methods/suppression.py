@@ -617,11 +617,9 @@ class _Witnesses:
         done, lo, hi = self._seen.get(key, (0, np.zeros(self.n), np.zeros(self.n)))
         if done < m.shape[0]:  # only the points added since this pattern was last asked about
             new = m[done:]
-            lower, upper = _bounds(q, hidden)
-            tol = _tolerance(q)
+            low, high = _rooms(q, hidden)
             cols = new.indices
-            bad = ((new.data < lower[cols] - q.value[cols] - tol[cols])
-                   | (new.data > upper[cols] - q.value[cols] + tol[cols]))
+            bad = (new.data < low[cols]) | (new.data > high[cols])
             rows = np.repeat(np.arange(new.shape[0]), np.diff(new.indptr))
             valid = np.ones(new.shape[0], dtype=bool)
             valid[rows[bad]] = False
@@ -633,10 +631,13 @@ class _Witnesses:
         return lo, hi
 
 
-def _tolerance(q: Quantity) -> np.ndarray:
-    """How far a point may stray outside a cell's bounds and still count (linear programs keep
-    their bounds to HiGHS's feasibility tolerance, 1e-7)."""
-    return 1e-7 * np.maximum(1.0, np.abs(q.value))
+def _rooms(q: Quantity, hidden: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The lowest and highest deviation from its true value each cell of a point may take for
+    the point to count under `hidden`: the cell's bounds, give or take 1e-7 of its size (linear
+    programs keep their bounds to HiGHS's feasibility tolerance, 1e-7)."""
+    lower, upper = _bounds(q, hidden)
+    tol = 1e-7 * np.maximum(1.0, np.abs(q.value))
+    return lower - q.value - tol, upper - q.value + tol
 
 
 def _bound_pairs(q: Quantity) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
@@ -1128,9 +1129,8 @@ def audit_quantity(table: LinkedTable, quantity: Quantity, hidden, *, witnesses:
         if (~proven[linked]).any():
             _cycle_proofs(table, q, hidden, linked[~proven[linked]], witnesses)
             _prove(q, witnesses, hidden, linked, proven)
-        rng = np.random.default_rng(seed)
         if (~proven[linked]).sum() > _MANY:
-            _find_witnesses(table, q, hidden, linked, witnesses, proven, rng)
+            _find_witnesses(table, q, hidden, linked, witnesses, proven, np.random.default_rng(seed))
         b_free = b_hi > b_lo
         # per cell, published figures at face value first (a small program over the hidden cells
         # linked to it), then every cell within _RINGS relations of those hidden cells free within
@@ -1141,7 +1141,7 @@ def audit_quantity(table: LinkedTable, quantity: Quantity, hidden, *, witnesses:
                   _Ranges(table, q, hidden, free=hidden & b_free, widen=b_free),
                   _Ranges(table, q, hidden, free=b_free)]
         lo_w, hi_w = witnesses.observed(q, hidden)
-        room_lo, room_hi = b_lo - q.value - _tolerance(q), b_hi - q.value + _tolerance(q)
+        room_lo, room_hi = _rooms(q, hidden)
         for i in linked[~proven[linked]]:
             if _reaches(hi_w[i] - lo_w[i], q.required[i]):
                 proven[i] = True
@@ -1149,7 +1149,7 @@ def audit_quantity(table: LinkedTable, quantity: Quantity, hidden, *, witnesses:
             for step, model in enumerate(models):
                 lo_i, hi_i, cut, bound, points, both = model.of(int(i), (q.required[i], lo_w[i], hi_w[i]))
                 points = witnesses.add(points, relations=table.relations)
-                points = points[np.all((points >= room_lo) & (points <= room_hi), axis=1)]  # as `observed`
+                points = points[np.all((points >= room_lo) & (points <= room_hi), axis=1)]  # as `observed` does
                 if len(points):  # later cells may be proven by these points already
                     lo_w = np.minimum(lo_w, points.min(axis=0))
                     hi_w = np.maximum(hi_w, points.max(axis=0))
