@@ -6,7 +6,8 @@ builds the additive relations itself (parent area = sum of its children, 'all' =
 categories) and asks scipy.optimize.linprog directly how far each confidential cell's value can
 move. It shares no code with pipeline.methods.suppression. The protection level it checks
 (DESIGN §4, README 'Disclosure control'): width >= max(0.5 × value, 5 × mean weight) for the
-weighted count of each side held by fewer than 5 respondents, >= 5 for the sample size. The true
+weighted count of each side held by fewer than 5 respondents (or by none, in a cell of fewer
+than 10 persons: the unanimous rule), >= 5 for the sample size. The true
 values (to compute those levels and to check the truth lies inside) come from internal/cells.parquet.
 """
 
@@ -31,6 +32,7 @@ from pipeline.stages.protect import FIGURE_COLUMNS, protect, public_columns, pub
 from tests.conftest import DEMO_CONFIG, demo_settings, write_config
 
 K = 5            # disclosure.min_respondents of the demo config
+UNANIMOUS = 10   # disclosure.unanimous_below of the demo config
 RELATIVE = 0.5   # disclosure.protection.relative (default)
 STEP = 10        # disclosure.round_counts_to
 DECIMALS = 4     # disclosure.decimals
@@ -119,12 +121,10 @@ def test_estimates_and_errors_rounded_to_decimals_in_the_public_file_only(config
 # A real release, audited independently
 
 
-@pytest.fixture(scope="module")
-def release(tmp_path_factory, small_demo):
-    root = tmp_path_factory.mktemp("protect")
+def make_release(root, small_demo, settings) -> dict:
     shutil.copytree(small_demo / "data", root / "data")
     (root / "configs").mkdir()
-    summary = run(write_config(root / "configs" / "demo.yaml", demo_settings()), release_id="p1")
+    summary = run(write_config(root / "configs" / "demo.yaml", settings), release_id="p1")
     rel = summary.release_dir
     return {"root": root, "dir": rel,
             "public_csv": pd.read_csv(rel / "public" / "estimates.csv", dtype={"geo_code": str}, keep_default_na=False,
@@ -132,6 +132,11 @@ def release(tmp_path_factory, small_demo):
             "cells": pd.read_parquet(rel / "internal" / "cells.parquet"),
             "manifest": json.loads((rel / "manifest.json").read_text()),
             "lookup": pd.read_csv(root / "data" / "raw" / "demo_areas.csv", dtype=str)}
+
+
+@pytest.fixture(scope="module")
+def release(tmp_path_factory, small_demo):
+    return make_release(tmp_path_factory.mktemp("protect"), small_demo, demo_settings())
 
 
 LEVELS = ["nation", "region", "district", "area"]
@@ -209,38 +214,83 @@ def reader_range(M, bounds, i) -> tuple[float, float]:
     return found[1], found[0]
 
 
-def test_no_confidential_cell_can_be_narrowed_below_the_protection_level(release):
+def protected_sides(n, x, *, k=K, unanimous=UNANIMOUS) -> list[str]:
+    """The weighted counts the rules protect in a cell of n persons, x with the characteristic: a
+    side held by fewer than k respondents, or by none in a cell of fewer than `unanimous` persons."""
+    return [name for name, persons in (("count", x), ("complement", n - x))
+            if 0 < persons < k or (persons == 0 and 0 < n < unanimous)]
+
+
+def check_protected(release, indicator, pick, *, k=K, unanimous=UNANIMOUS, respondents=K):
+    """Independent audit of the cells `pick(pub, truth, M, primary, beside)` chooses in one
+    indicator: every protected side's range (and the sample size's) at least as wide as the level.
+    Returns (cells checked, count sides checked, complement sides checked, sides held by nobody)."""
     public, cells = release["public_csv"], release["cells"]
-    checked, rng = 0, np.random.default_rng(11)
-    for indicator in ["smoker", "chronic_condition", "addiction_treatment"]:
-        rows = np.flatnonzero((public["indicator"] == indicator).to_numpy())
-        pub, truth = public.iloc[rows].reset_index(drop=True), cells.iloc[rows].reset_index(drop=True)
-        assert (pub["geo_code"].to_numpy() == truth["geo_code"].to_numpy()).all()
-        M = reader_relations(pub, release["lookup"])
-        bounds = reader_bounds(pub)
-        primary = pub["reasons"].fillna("").str.contains("few_respondents").to_numpy()
-        comp = pub["reasons"].fillna("").str.contains("complementary").to_numpy()
-        A = abs(M)
-        beside = np.asarray((A.T @ (A @ comp.astype(float))) > 0).ravel()
-        # the cells that needed complements are the ones at risk; add a few others at random
-        chosen = list(np.flatnonzero(primary & beside)[:8])
+    rows = np.flatnonzero((public["indicator"] == indicator).to_numpy())
+    pub, truth = public.iloc[rows].reset_index(drop=True), cells.iloc[rows].reset_index(drop=True)
+    assert (pub["geo_code"].to_numpy() == truth["geo_code"].to_numpy()).all()
+    M = reader_relations(pub, release["lookup"])
+    bounds = reader_bounds(pub)
+    primary = pub["reasons"].fillna("").str.contains("few_respondents").to_numpy()
+    comp = pub["reasons"].fillna("").str.contains("complementary").to_numpy()
+    A = abs(M)
+    beside = np.asarray((A.T @ (A @ comp.astype(float))) > 0).ravel()
+    checked, sides, nobody = 0, {"count": 0, "complement": 0}, 0
+    for i in pick(pub, truth, M, primary, beside):
+        n, x = truth.loc[i, "sample_size"], truth.loc[i, "respondents"]
+        base, count = truth.loc[i, "weighted_base"], truth.loc[i, "weighted_count"]
+        value = {"count": (count, x), "complement": (base - count, n - x)}
+        for name in protected_sides(n, x, k=k, unanimous=unanimous):
+            lo, hi = reader_range(M, bounds[name], i)
+            assert lo - 1e-6 <= value[name][0] <= hi + 1e-6, (indicator, i, name)
+            need = max(RELATIVE * value[name][0], respondents * base / n)
+            assert hi - lo >= need * (1 - 1e-7), (indicator, truth.loc[i, "geo_code"], name, lo, hi, need)
+            sides[name] += 1
+            nobody += value[name][1] == 0
+        lo, hi = reader_range(M, bounds["sample"], i)
+        assert lo - 1e-9 <= n <= hi + 1e-9 and hi - lo >= respondents - 1e-7, (indicator, i, "sample", lo, hi)
+        checked += 1
+    return checked, sides["count"], sides["complement"], nobody
+
+
+def test_no_confidential_cell_can_be_narrowed_below_the_protection_level(release):
+    rng = np.random.default_rng(11)
+
+    def pick(pub, truth, M, primary, beside):
+        # the cells that needed complements are the ones at risk; a few others at random, and a few
+        # all-or-none cells (the unanimous rule)
+        n, x = truth["sample_size"].to_numpy(), truth["respondents"].to_numpy()
+        unanimous = np.flatnonzero(primary & (n < UNANIMOUS) & ((x == 0) | (x == n)))
         others = np.flatnonzero(primary & ~beside)
-        chosen += list(rng.choice(others, size=min(4, len(others)), replace=False))
-        for i in chosen:
-            n, x = truth.loc[i, "sample_size"], truth.loc[i, "respondents"]
-            base, count = truth.loc[i, "weighted_base"], truth.loc[i, "weighted_count"]
-            sides = [("count", count, x), ("complement", base - count, n - x)]
-            for name, value, persons in sides:
-                if not 0 < persons < K:
-                    continue
-                lo, hi = reader_range(M, bounds[name], i)
-                assert lo - 1e-6 <= value <= hi + 1e-6, (indicator, i, name)
-                need = max(RELATIVE * value, K * base / n)
-                assert hi - lo >= need * (1 - 1e-7), (indicator, truth.loc[i, "geo_code"], name, lo, hi, need)
-            lo, hi = reader_range(M, bounds["sample"], i)
-            assert lo - 1e-9 <= n <= hi + 1e-9 and hi - lo >= K - 1e-7, (indicator, i, "sample", lo, hi)
-            checked += 1
-    assert checked >= 20
+        return (list(np.flatnonzero(primary & beside)[:8])
+                + list(rng.choice(others, size=min(4, len(others)), replace=False))
+                + list(rng.choice(unanimous, size=min(4, len(unanimous)), replace=False)))
+
+    found = [check_protected(release, ind, pick) for ind in ["smoker", "chronic_condition", "addiction_treatment"]]
+    checked, _count, _complement, nobody = np.sum(found, axis=0)
+    assert checked >= 20 and nobody >= 4
+
+
+def test_all_or_none_cells_alone_get_complements_and_pass_the_independent_audit(tmp_path_factory, small_demo):
+    """The unanimous rule on its own (threshold rule off: min_respondents 0), 5 persons' worth of
+    protection: cells where nobody, or everybody, has the characteristic are protected like any
+    other confidential cell, complements included."""
+    settings = demo_settings()
+    settings["disclosure"].update(min_respondents=0, protection={"respondents": K})
+    release = make_release(tmp_path_factory.mktemp("unanimous"), small_demo, settings)
+    assert release["manifest"]["disclosure"]["complementary_cells"] > 0
+
+    rng = np.random.default_rng(5)
+
+    def pick(pub, truth, M, primary, beside):
+        others = np.flatnonzero(primary & ~beside)
+        return list(np.flatnonzero(primary & beside)[:12]) + list(rng.choice(others, size=min(5, len(others)),
+                                                                             replace=False))
+
+    found = [check_protected(release, ind, pick, k=0) for ind in ["smoker", "chronic_condition", "addiction_treatment"]]
+    checked, count, complement, nobody = np.sum(found, axis=0)
+    # one side per cell, held by nobody; cells where none have it and cells where all have it
+    assert checked >= 20 and count + complement == nobody == checked and count > 0 and complement > 0
 
 
 def test_without_complementary_cells_a_confidential_cell_would_be_recoverable(release):
