@@ -447,6 +447,27 @@ def test_a_cell_one_side_of_its_range_proves_costs_one_program(areas, side, monk
     assert (lo, hi) == (pytest.approx(0, abs=1e-7), pytest.approx(a1 + a2))
 
 
+def test_a_side_a_witness_takes_to_the_cells_bound_costs_no_program(monkeypatch):
+    # A1 = 3 and A2 = 2 hidden, published at face value: A1 in [0, 5] by hand, 5 wide, short of 10.
+    # A point already seen puts A1 at 0, its own lower bound: only the maximum is solved, and the
+    # minimum's multipliers are 0 (its bound is A1's bound, 0). The range is exact and the cut
+    # bounds the width at 5 now, as the cut from both programs does.
+    table, values = hierarchy([3, 2, 50, 20, 25, 30])
+    hidden = np.zeros(9, bool)
+    hidden[[3, 4]] = True
+    q = exact_quantity(values, np.zeros(9))
+    solves = []
+    original = S.LinearProgram.minimise
+    monkeypatch.setattr(S.LinearProgram, "minimise", lambda self, c: solves.append(c) or original(self, c))
+    ranges = S._Ranges(table, q, hidden, free=hidden)
+    lo, hi, cut, bound, points, exact = ranges.of(3, (10.0, -3.0, 0.0))
+    assert len(solves) == 1 and solves[0][np.searchsorted(ranges._program(3)[0], 3)] == -1.0  # the maximum
+    assert (lo, hi, bound) == (0.0, pytest.approx(5), pytest.approx(5)) and exact and len(points) == 1
+    both = S._Ranges(table, q, hidden, free=hidden).of(3)
+    assert len(solves) == 3 and both[0] == pytest.approx(0, abs=1e-7) and both[3] == pytest.approx(5)
+    assert cut.shortfall(hidden) == pytest.approx(both[2].shortfall(hidden)) == pytest.approx(0 - 5)  # required 0
+
+
 def test_a_cell_a_reader_cannot_bound_above_passes_with_an_unbounded_range():
     # A1, R1 and the nation hidden, with no upper bound known for a hidden count: A1 + t, R1 + t,
     # nation + t keep every relation for any t >= −3, so A1 can be anything from 0 up. The

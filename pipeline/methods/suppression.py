@@ -55,7 +55,8 @@ of its range), cheapest proof first:
    step a proof, or a cut valid for the full reader model when its dual bound falls short, or the
    exact range when its width meets that bound; the whole table is the final word. The side that
    can reach the width alone goes first, and the other is skipped when the first, with the points
-   found so far, proves the cell; a cell those points prove needs no program at all.
+   found so far, proves the cell; a cell those points prove needs no program at all, nor a side
+   they already take to the cell's own bound (usually 0).
 Proofs are kept and reused while the cells they move keep their bounds; the values of the proofs
 are the audit's ranges (`lower`, `upper`): a reader's full range contains them.
 """
@@ -754,11 +755,18 @@ class _Ranges:
         value = float(q.value[cell])
         required, seen_low, seen_high = proof if proof is not None else (np.inf, 0.0, 0.0)
         found = {-1.0: (value + seen_high, None), 1.0: (value + seen_low, None)}  # sign: (value, duals)
-        points, solved = [], 0
+        # a side a witness already takes to the cell's own bound needs no program: that bound is
+        # its optimum, and multipliers 0 prove it (the cut's bound on that side is the cell's bound)
+        slack = 1e-9 * max(1.0, abs(value))
+        at_bound = {1.0: value + seen_low <= lower[cell] + slack, -1.0: value + seen_high >= upper[cell] - slack}
+        points, known = [], 0
         for sign in ((1.0, -1.0) if value >= required else (-1.0, 1.0)):  # minimise (+1), maximise (−1)
-            if solved and _reaches(found[-1.0][0] - found[1.0][0], required):
+            if known and _reaches(found[-1.0][0] - found[1.0][0], required):
                 break
-            solved += 1
+            known += 1
+            if at_bound[sign]:
+                found[sign] = (float(lower[cell] if sign > 0 else upper[cell]), np.zeros(len(rows)))
+                continue
             c = np.zeros(k)
             c[target] = sign
             solution = program.minimise(c)
@@ -775,9 +783,9 @@ class _Ranges:
         (hi_v, nu_max), (lo_v, nu_min) = found[-1.0], found[1.0]
         points = np.stack(points) if points else none
         if nu_max is None or nu_min is None:
-            return lo_v, hi_v, None, np.inf, points, solved == 2
+            return lo_v, hi_v, None, np.inf, points, known == 2
         cut, bound = _width_cut(table, q, cell, rows, nu_max, nu_min, lower, upper)
-        return lo_v, hi_v, cut, bound, points, solved == 2
+        return lo_v, hi_v, cut, bound, points, known == 2
 
 
 def _width_cut(table, quantity, cell, rows, nu_max, nu_min, lower, upper) -> tuple[_Cut | None, float]:
