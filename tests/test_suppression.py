@@ -424,12 +424,8 @@ def test_rounding_intervals_widen_the_range_by_hand():
     assert S.feasible_range(table, rounded, hidden, 3)[:2] == (pytest.approx(0, abs=1e-7), pytest.approx(50))
 
 
-@pytest.mark.parametrize("areas, side", [([30, 20, 50, 20, 25, 30], "min"), ([3, 50, 50, 20, 25, 30], "max")])
-def test_a_cell_one_side_of_its_range_proves_costs_one_program(areas, side, monkeypatch):
-    # A1 and A2 hidden, published at face value: y1 + y2 = A1 + A2, so A1 in [0, A1 + A2] by hand.
-    # A1 = 30, 10 required: it can fall to 0, 30 wide on that side alone, so only the minimum is
-    # solved. A1 = 3: the maximum, 53, gives 50 alone. The side skipped is reported as the value
-    # itself (nothing witnessed beyond it), not as exact, and without a cut.
+def areas_a1_a2_hidden(areas, monkeypatch):
+    """The hierarchy with A1 and A2 hidden, nothing required, and a list of the programs solved."""
     table, values = hierarchy(areas)
     hidden = np.zeros(9, bool)
     hidden[[3, 4]] = True
@@ -437,6 +433,16 @@ def test_a_cell_one_side_of_its_range_proves_costs_one_program(areas, side, monk
     solves = []
     original = S.LinearProgram.minimise
     monkeypatch.setattr(S.LinearProgram, "minimise", lambda self, c: solves.append(c) or original(self, c))
+    return table, q, hidden, solves
+
+
+@pytest.mark.parametrize("areas, side", [([30, 20, 50, 20, 25, 30], "min"), ([3, 50, 50, 20, 25, 30], "max")])
+def test_a_cell_one_side_of_its_range_proves_costs_one_program(areas, side, monkeypatch):
+    # A1 and A2 hidden, published at face value: y1 + y2 = A1 + A2, so A1 in [0, A1 + A2] by hand.
+    # A1 = 30, 10 required: it can fall to 0, 30 wide on that side alone, so only the minimum is
+    # solved. A1 = 3: the maximum, 53, gives 50 alone. The side skipped is reported as the value
+    # itself (nothing witnessed beyond it), not as exact, and without a cut.
+    table, q, hidden, solves = areas_a1_a2_hidden(areas, monkeypatch)
     ranges = S._Ranges(table, q, hidden, free=hidden)
     lo, hi, cut, _, points, exact = ranges.of(3, (10.0, 0.0, 0.0))
     assert len(solves) == 1 and len(points) == 1 and cut is None and not exact
@@ -452,13 +458,7 @@ def test_a_side_a_witness_takes_to_the_cells_bound_costs_no_program(monkeypatch)
     # A point already seen puts A1 at 0, its own lower bound: only the maximum is solved, and the
     # minimum's multipliers are 0 (its bound is A1's bound, 0). The range is exact and the cut
     # bounds the width at 5 now, as the cut from both programs does.
-    table, values = hierarchy([3, 2, 50, 20, 25, 30])
-    hidden = np.zeros(9, bool)
-    hidden[[3, 4]] = True
-    q = exact_quantity(values, np.zeros(9))
-    solves = []
-    original = S.LinearProgram.minimise
-    monkeypatch.setattr(S.LinearProgram, "minimise", lambda self, c: solves.append(c) or original(self, c))
+    table, q, hidden, solves = areas_a1_a2_hidden([3, 2, 50, 20, 25, 30], monkeypatch)
     ranges = S._Ranges(table, q, hidden, free=hidden)
     lo, hi, cut, bound, points, exact = ranges.of(3, (10.0, -3.0, 0.0))
     assert len(solves) == 1 and solves[0][np.searchsorted(ranges._program(3)[0], 3)] == -1.0  # the maximum
