@@ -745,7 +745,8 @@ class _Ranges:
         and highest deviation of the cell already witnessed): the side that can reach the width on
         its own is solved first (the minimum when the cell's value is at least the width: it can
         fall to 0), and the other is skipped when the first, with what is witnessed, proves the
-        cell. Then lower or upper is the witnessed value, there is no cut and exact is False."""
+        cell. Then lower or upper is the witnessed value, there is no cut and exact is False. A side
+        witnessed at the cell's own bound is known without a program (exact, multipliers 0)."""
         table, q, lower, upper = self.table, self.q, self.lower, self.upper
         none = np.zeros((0, table.n_cells))
         if not self.free[cell]:
