@@ -28,7 +28,10 @@ CAUTIONS = [
     "linear programming proves, before anything is published, that the published figures leave every "
     "confidential figure within a range at least as wide as the protection level (see "
     "'method.disclosure'). The protection level and the thresholds are defaults from common practice; "
-    "the office's confidentiality rules and local law decide them.",
+    "the office's confidentiality rules and local law decide them. The audit takes each indicator's "
+    "table on its own: indicators over the same persons share each cell's sample size and weighted "
+    "base, so a cell withheld in one may have them printed in another's row, and its sample size is "
+    "then known exactly. Figures published outside this release are not part of the audit.",
 ]
 
 _NOT_PROTECTED = (
@@ -75,7 +78,7 @@ def disclosure_text(config) -> dict:
                          "worked out from the additive relations of the release (a parent area is the sum of "
                          "its children, 'all' the sum of its categories), for the weighted count, the weighted "
                          "base and the sample size alike. They are chosen by a mixed-integer program "
-                         f"(scipy.optimize.milp) that hides as little as possible (cost '{dis.cost}': "
+                         f"(HiGHS) that hides as little as possible (cost '{dis.cost}': "
                          + ("each hidden cell counts 2 to the power of its steps above the finest cells, so "
                             "detail is hidden before totals" if dis.cost == "cells" else
                             "the weighted base of each hidden cell") +
@@ -83,10 +86,12 @@ def disclosure_text(config) -> dict:
                          "(Fischetti & Salazar-González 2000, JASA 95:916; Hundepool et al. 2012, Statistical "
                          f"Disclosure Control, Wiley). After {dis.time_limit_seconds:g} s the program gives way "
                          "to a greedy choice, audited the same way.",
-        "protection_level": f"For every confidential cell, the range of values a reader can work out from everything "
-                            f"published must be at least max({dis.protection.relative:g} × the value, "
+        "protection_level": f"For every confidential cell, the range of values a reader can work out from the "
+                            f"published figures of its indicator must be at least max({dis.protection.relative:g} × the value, "
                             f"{respondents} × the cell's mean weight) wide for the weighted count of the side "
-                            f"with fewer than {k} respondents (with, or without, the characteristic), and at least "
+                            f"with fewer than {k} respondents (with, or without, the characteristic)"
+                            + (" or, under the unanimous rule, with none" if dis.unanimous_below else "")
+                            + f", and at least "
                             f"{respondents} wide for the sample size (common practice; set by the office).",
         "audit": "Audited: the weighted count with the characteristic, the weighted count without it (base − "
                  "count) and the sample size, each over its own additive table. Before publication, linear "

@@ -271,6 +271,84 @@ def test_no_confidential_cell_can_be_narrowed_below_the_protection_level(release
     assert checked >= 20 and nobody >= 4
 
 
+def bases_from_other_indicators(public: pd.DataFrame, indicator: str) -> np.ndarray:
+    """What a reader can take from the other indicators' rows: where another indicator's published
+    sample sizes agree with this one's on every cell both publish (the same persons: same universe,
+    no item non-response), a withheld cell of this indicator has the weighted base that indicator
+    publishes for it (± the rounding). NaN where no such row exists."""
+    key = ["geo_level", "geo_code", "sex", "age_group"]
+    mine = public[public["indicator"] == indicator].reset_index(drop=True)
+    found = np.full(len(mine), np.nan)
+    for other in public["indicator"].unique():
+        if other == indicator:
+            continue
+        theirs = public[public["indicator"] == other].reset_index(drop=True)
+        assert (theirs[key].to_numpy() == mine[key].to_numpy()).all()
+        both = (mine["status"] != "suppressed").to_numpy() & (theirs["status"] != "suppressed").to_numpy()
+        if both.sum() < 10 or not (mine.loc[both, "sample_size"] == theirs.loc[both, "sample_size"]).all():
+            continue
+        take = (mine["status"] == "suppressed").to_numpy() & (theirs["status"] != "suppressed").to_numpy()
+        found = np.where(take & np.isnan(found), theirs["weighted_base"].to_numpy(dtype=float), found)
+    return found
+
+
+@pytest.fixture(scope="module")
+def full_release(tmp_path_factory):
+    """The release `make demo` publishes (the full demo survey, its config): enough persons for
+    indicators over the same people to publish cells the other withholds."""
+    from pipeline.demo import write_demo
+
+    root = tmp_path_factory.mktemp("full")
+    (root / "demo" / "data" / "raw").mkdir(parents=True)
+    write_demo(root / "demo" / "data" / "raw")
+    return make_release(root / "release", root / "demo", demo_settings())
+
+
+def test_bases_published_in_other_indicators_do_not_narrow_a_confidential_count(full_release):
+    """Indicators over the same persons share each cell's sample size and weighted base, so a cell
+    withheld in one may have its base printed in another's row. A reader who adds count + (base −
+    count) = that base (± the rounding) to both audited tables of the indicator still cannot narrow
+    a protected weighted count below the level (checked by linprog over the joint program; sample
+    sizes are not checked here: they can be read off the other row exactly, see the README)."""
+    release = full_release
+    public, cells = release["public_csv"], release["cells"]
+    checked, linked = 0, 0
+    rng = np.random.default_rng(3)
+    for indicator in public["indicator"].unique():
+        rows = np.flatnonzero((public["indicator"] == indicator).to_numpy())
+        pub, truth = public.iloc[rows].reset_index(drop=True), cells.iloc[rows].reset_index(drop=True)
+        base = bases_from_other_indicators(public, indicator)
+        M = reader_relations(pub, release["lookup"])
+        bounds = reader_bounds(pub)
+        m, cols = M.shape
+        zero = sparse.csr_matrix((m, cols))
+        A_eq = sparse.vstack([sparse.hstack([M, zero]), sparse.hstack([zero, M])])
+        known = np.flatnonzero(np.isfinite(base))
+        pair = sparse.csr_matrix((np.ones(2 * len(known)), (np.tile(np.arange(len(known)), 2), np.r_[known, cols + known])),
+                                 shape=(len(known), 2 * cols))
+        A_ub, b_ub = sparse.vstack([pair, -pair]), np.r_[base[known] + STEP / 2, -(base[known] - STEP / 2)]
+        box = np.vstack([np.column_stack(bounds["count"]), np.column_stack(bounds["complement"])])
+        n, x = truth["sample_size"].to_numpy(), truth["respondents"].to_numpy()
+        at_risk = [i for i in known if protected_sides(n[i], x[i])]
+        linked += len(at_risk)
+        for i in rng.choice(at_risk, size=min(10, len(at_risk)), replace=False) if at_risk else []:
+            for name in protected_sides(n[i], x[i]):
+                j = i if name == "count" else cols + i
+                ends = []
+                for sign in (1.0, -1.0):
+                    c = np.zeros(2 * cols)
+                    c[j] = sign
+                    res = linprog(c, A_ub=A_ub, b_ub=b_ub, A_eq=A_eq, b_eq=np.zeros(2 * m), bounds=box, method="highs")
+                    assert res.status == 0, res.message
+                    ends.append(res.x[j])
+                value = truth.loc[i, "weighted_count"] if name == "count" else truth.loc[i, "weighted_base"] - truth.loc[i, "weighted_count"]
+                need = max(RELATIVE * value, K * truth.loc[i, "weighted_base"] / n[i])
+                assert ends[0] - 1e-6 <= value <= ends[1] + 1e-6
+                assert ends[1] - ends[0] >= need * (1 - 1e-7), (indicator, pub.loc[i, "geo_code"], name, ends, need)
+                checked += 1
+    assert linked >= 20 and checked >= 15
+
+
 def test_all_or_none_cells_alone_get_complements_and_pass_the_independent_audit(tmp_path_factory, small_demo):
     """The unanimous rule on its own (threshold rule off: min_respondents 0), 5 persons' worth of
     protection: cells where nobody, or everybody, has the characteristic are protected like any
