@@ -16,8 +16,9 @@
 
 What the audit assumes a reader knows (DESIGN §4): the public file, one indicator's table at a
 time. (Indicators over the same persons share sample sizes and bases: a cell withheld in one can
-have them printed in another's row. The tests check that the weighted counts stay protected
-against those bases on the demo; the sample size is then known, as the README says.) Published
+have them printed in another's row. The tests check, for a sample of such cells of the demo,
+that the weighted counts stay protected against those bases; the sample size is then known, as
+the README says.) Published
 weighted counts and bases are known to ± half the rounding step, and a published estimate, rounded to
 disclosure.decimals, narrows the weighted count further (count = estimate × base); sample sizes
 are published exactly; a withheld cell without sample is known to be 0 (its reason code says so);
