@@ -349,6 +349,29 @@ def test_bases_published_in_other_indicators_do_not_narrow_a_confidential_count(
     assert linked >= 20 and checked >= 15
 
 
+def test_manifest_counts_confidential_sample_sizes_printed_in_another_indicator(full_release):
+    # counted again from the files: indicators whose internal sample sizes agree cell by cell, and a
+    # confidential cell withheld in one of them whose row is published in another
+    cells, public = full_release["cells"], full_release["public_csv"]
+    key = ["geo_level", "geo_code", "sex", "age_group"]
+    table = cells.assign(withheld=(public["status"] == "suppressed").to_numpy(),
+                         confidential=(cells["rule_few_respondents"] | cells["rule_unanimous"]).to_numpy())
+    by = {ind: t.set_index(key).sort_index() for ind, t in table.groupby("indicator")}
+    exposed, groups = 0, set()
+    for a, ta in by.items():
+        same = frozenset(b for b, tb in by.items() if ta["sample_size"].equals(tb["sample_size"]))
+        if len(same) > 1:
+            groups.add(same)
+        shown = np.zeros(len(ta), dtype=bool)
+        for b, tb in by.items():
+            if b != a and ta["sample_size"].equals(tb["sample_size"]):
+                shown |= ~tb["withheld"].to_numpy()
+        exposed += int((ta["confidential"].to_numpy() & ta["withheld"].to_numpy() & shown).sum())
+    reported = full_release["manifest"]["disclosure"]["audit"]["sample_sizes_printed_in_another_indicator"]
+    assert {frozenset(g) for g in reported["indicator_groups"]} == groups and groups
+    assert reported["confidential_cells"] == exposed > 0
+
+
 def test_all_or_none_cells_alone_get_complements_and_pass_the_independent_audit(tmp_path_factory, small_demo):
     """The unanimous rule on its own (threshold rule off: min_respondents 0), 5 persons' worth of
     protection: cells where nobody, or everybody, has the characteristic are protected like any
