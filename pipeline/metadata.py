@@ -91,8 +91,8 @@ def disclosure_text(config) -> dict:
                             f"{respondents} × the cell's mean weight) wide for the weighted count of the side "
                             f"with fewer than {k} respondents (with, or without, the characteristic)"
                             + (" or, under the unanimous rule, with none" if dis.unanimous_below else "")
-                            + f", and at least "
-                            f"{respondents} wide for the sample size (common practice; set by the office).",
+                            + f", and at least {respondents} wide for the sample size (common practice; set by "
+                              "the office).",
         "audit": "Audited: the weighted count with the characteristic, the weighted count without it (base − "
                  "count) and the sample size, each over its own additive table. Before publication, linear "
                  "programs (HiGHS) take the reader's view: every "

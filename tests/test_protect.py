@@ -221,6 +221,14 @@ def protected_sides(n, x, *, k=K, unanimous=UNANIMOUS) -> list[str]:
             if 0 < persons < k or (persons == 0 and 0 < n < unanimous)]
 
 
+def side_level(truth: pd.DataFrame, i: int, name: str, respondents: int = K) -> tuple[float, float]:
+    """A protected side's true weighted count (count, or base − count) and the width it needs:
+    max(RELATIVE × value, respondents × the cell's mean weight)."""
+    base, count = truth.loc[i, "weighted_base"], truth.loc[i, "weighted_count"]
+    value = count if name == "count" else base - count
+    return value, max(RELATIVE * value, respondents * base / truth.loc[i, "sample_size"])
+
+
 def check_protected(release, indicator, pick, *, k=K, unanimous=UNANIMOUS, respondents=K):
     """Independent audit of the cells `pick(pub, truth, M, primary, beside)` chooses in one
     indicator: every protected side's range (and the sample size's) at least as wide as the level.
@@ -238,15 +246,13 @@ def check_protected(release, indicator, pick, *, k=K, unanimous=UNANIMOUS, respo
     checked, sides, nobody = 0, {"count": 0, "complement": 0}, 0
     for i in pick(pub, truth, M, primary, beside):
         n, x = truth.loc[i, "sample_size"], truth.loc[i, "respondents"]
-        base, count = truth.loc[i, "weighted_base"], truth.loc[i, "weighted_count"]
-        value = {"count": (count, x), "complement": (base - count, n - x)}
         for name in protected_sides(n, x, k=k, unanimous=unanimous):
+            value, need = side_level(truth, i, name, respondents)
             lo, hi = reader_range(M, bounds[name], i)
-            assert lo - 1e-6 <= value[name][0] <= hi + 1e-6, (indicator, i, name)
-            need = max(RELATIVE * value[name][0], respondents * base / n)
+            assert lo - 1e-6 <= value <= hi + 1e-6, (indicator, i, name)
             assert hi - lo >= need * (1 - 1e-7), (indicator, truth.loc[i, "geo_code"], name, lo, hi, need)
             sides[name] += 1
-            nobody += value[name][1] == 0
+            nobody += (x if name == "count" else n - x) == 0
         lo, hi = reader_range(M, bounds["sample"], i)
         assert lo - 1e-9 <= n <= hi + 1e-9 and hi - lo >= respondents - 1e-7, (indicator, i, "sample", lo, hi)
         checked += 1
@@ -318,20 +324,22 @@ def test_bases_published_in_other_indicators_do_not_narrow_a_confidential_count(
         rows = np.flatnonzero((public["indicator"] == indicator).to_numpy())
         pub, truth = public.iloc[rows].reset_index(drop=True), cells.iloc[rows].reset_index(drop=True)
         base = bases_from_other_indicators(public, indicator)
+        known = np.flatnonzero(np.isfinite(base))
+        n, x = truth["sample_size"].to_numpy(), truth["respondents"].to_numpy()
+        at_risk = [i for i in known if protected_sides(n[i], x[i])]
+        linked += len(at_risk)
+        if not at_risk:
+            continue
         M = reader_relations(pub, release["lookup"])
         bounds = reader_bounds(pub)
         m, cols = M.shape
         zero = sparse.csr_matrix((m, cols))
         A_eq = sparse.vstack([sparse.hstack([M, zero]), sparse.hstack([zero, M])])
-        known = np.flatnonzero(np.isfinite(base))
         pair = sparse.csr_matrix((np.ones(2 * len(known)), (np.tile(np.arange(len(known)), 2), np.r_[known, cols + known])),
                                  shape=(len(known), 2 * cols))
         A_ub, b_ub = sparse.vstack([pair, -pair]), np.r_[base[known] + STEP / 2, -(base[known] - STEP / 2)]
         box = np.vstack([np.column_stack(bounds["count"]), np.column_stack(bounds["complement"])])
-        n, x = truth["sample_size"].to_numpy(), truth["respondents"].to_numpy()
-        at_risk = [i for i in known if protected_sides(n[i], x[i])]
-        linked += len(at_risk)
-        for i in rng.choice(at_risk, size=min(10, len(at_risk)), replace=False) if at_risk else []:
+        for i in rng.choice(at_risk, size=min(10, len(at_risk)), replace=False):
             for name in protected_sides(n[i], x[i]):
                 j = i if name == "count" else cols + i
                 ends = []
@@ -341,8 +349,7 @@ def test_bases_published_in_other_indicators_do_not_narrow_a_confidential_count(
                     res = linprog(c, A_ub=A_ub, b_ub=b_ub, A_eq=A_eq, b_eq=np.zeros(2 * m), bounds=box, method="highs")
                     assert res.status == 0, res.message
                     ends.append(res.x[j])
-                value = truth.loc[i, "weighted_count"] if name == "count" else truth.loc[i, "weighted_base"] - truth.loc[i, "weighted_count"]
-                need = max(RELATIVE * value, K * truth.loc[i, "weighted_base"] / n[i])
+                value, need = side_level(truth, i, name)
                 assert ends[0] - 1e-6 <= value <= ends[1] + 1e-6
                 assert ends[1] - ends[0] >= need * (1 - 1e-7), (indicator, pub.loc[i, "geo_code"], name, ends, need)
                 checked += 1
@@ -417,11 +424,10 @@ def test_without_complementary_cells_a_confidential_cell_would_be_recoverable(re
     short = 0
     for i in beside[:40]:
         n, x = truth.loc[i, "sample_size"], truth.loc[i, "respondents"]
-        base, count = truth.loc[i, "weighted_base"], truth.loc[i, "weighted_count"]
-        for name, value, persons in (("count", count, x), ("complement", base - count, n - x)):
+        for name, persons in (("count", x), ("complement", n - x)):
             if 0 < persons < K:
                 lo, hi = reader_range(M, bounds[name], i)
-                short += hi - lo < max(RELATIVE * value, K * base / n)
+                short += hi - lo < side_level(truth, i, name)[1]
         lo, hi = reader_range(M, bounds["sample"], i)
         short += hi - lo < K
     assert short > 0

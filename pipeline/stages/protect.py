@@ -18,10 +18,10 @@ What the audit assumes a reader knows (DESIGN §4): the public file, one indicat
 time. (Indicators over the same persons share sample sizes and bases: a cell withheld in one can
 have them printed in another's row. The tests check, for a sample of such cells of the demo,
 that the weighted counts stay protected against those bases; the sample size is then known, as
-the README says.) Published
-weighted counts and bases are known to ± half the rounding step, and a published estimate, rounded to
-disclosure.decimals, narrows the weighted count further (count = estimate × base); sample sizes
-are published exactly; a withheld cell without sample is known to be 0 (its reason code says so);
+the README says, and the manifest counts such cells.) Published weighted counts and bases are
+known to ± half the rounding step, and a published estimate, rounded to disclosure.decimals,
+narrows the weighted count further (count = estimate × base); sample sizes are published exactly;
+a withheld cell without sample is known to be 0 (its reason code says so);
 `sample_too_small` on a withheld cell says n < reliability.min_sample, its absence n >= it; no
 subgroup exceeds the published grand total. Three quantities are audited, each over its own
 additive table: the weighted count with the characteristic (for cells where few or none have it),
@@ -210,27 +210,17 @@ def _shared_sample_sizes(f: pd.DataFrame, structure: _Structure, blocks: list[np
     takes one indicator at a time and cannot see it; the manifest counts it for the office."""
     n = f["sample_size"].to_numpy()
     names = [str(f["indicator"].iat[rows[0]]) for rows in blocks]
-
-    def same_cells(a: np.ndarray, b: np.ndarray) -> bool:
-        return (len(a) == len(b) and np.array_equal(structure.unit[a], structure.unit[b])
-                and np.array_equal(structure.domains[a], structure.domains[b]))
-
-    groups: list[list[int]] = []
+    by_persons: dict[tuple[bytes, bytes], list[int]] = {}
     for k, rows in enumerate(blocks):
-        for group in groups:
-            other = blocks[group[0]]
-            if same_cells(other, rows) and np.array_equal(n[other], n[rows]):
-                group.append(k)
-                break
-        else:
-            groups.append([k])
+        by_persons.setdefault((structure.layout(rows), n[rows].tobytes()), []).append(k)
+    groups = [g for g in by_persons.values() if len(g) > 1]
     exposed = 0
-    for group in (g for g in groups if len(g) > 1):
+    for group in groups:
         shown = np.zeros(len(blocks[group[0]]), dtype=bool)
         for k in group:
             shown |= ~withheld[blocks[k]]
         exposed += sum(int((confidential[blocks[k]] & withheld[blocks[k]] & shown).sum()) for k in group)
-    return {"indicator_groups": [[names[k] for k in g] for g in groups if len(g) > 1],
+    return {"indicator_groups": [[names[k] for k in g] for g in groups],
             "confidential_cells": exposed,
             "note": "indicators in one group have the same sample size in every cell; a confidential cell "
                     "withheld in one of them but published in another has its sample size (and weighted "
@@ -296,8 +286,13 @@ class _Structure:
         self.top = (self.level == 0) & (self.domains < 0).all(axis=1)  # grand-total cells
         self._tables: dict[bytes, suppression.LinkedTable] = {}
 
+    def layout(self, rows: np.ndarray) -> bytes:
+        """The cells of a block, unit and categories in order: blocks with the same layout have the
+        same relations."""
+        return np.column_stack([self.unit[rows], self.level[rows], self.domains[rows]]).tobytes()
+
     def table(self, rows: np.ndarray) -> suppression.LinkedTable:
-        key = np.column_stack([self.unit[rows], self.level[rows], self.domains[rows]]).tobytes()
+        key = self.layout(rows)
         if key not in self._tables:
             self._tables[key] = suppression.linked_table(
                 unit=self.unit[rows], parent=self.parent, level=self.level[rows], domains=self.domains[rows],
