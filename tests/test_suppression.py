@@ -409,6 +409,22 @@ def test_unreliable_cells_hidden_anyway_serve_as_complements_at_no_cost():
     assert not result.complementary.any() and result.cost == 0 and result.ok
 
 
+def test_a_shortfall_of_float_dust_asks_for_no_complement():
+    # A1 (0.1) needs a range as wide as its value; the one-relation bound gives exactly that, but in
+    # floating point 0.1 + 0.2 + 50 − 50.300000000000004 leaves a shortfall of about 1e-15. Taken as
+    # a real shortfall, every cell's gain was clipped to it and the program refused the table ("too
+    # little room ... whatever is hidden") for the greedy fall-back; within the audit's tolerance it
+    # is none, and the program chooses the partner (A2, cheapest) as the hand reckoning says
+    table, values = hierarchy([0.1, 0.2, 50, 20, 25, 30])
+    required = np.zeros(9)
+    required[3] = values[3]
+    q = exact_quantity(values, required)
+    result = S.protect_table(table, quantities=[q], withheld=np.zeros(9, bool), eligible=np.ones(9, bool),
+                             cost=S.suppression_cost(table, kind="weighted_base", weighted_base=values))
+    assert result.method == "milp", result.status
+    assert np.flatnonzero(result.hidden).tolist() == [3, 4] and result.ok
+
+
 def test_rounding_intervals_widen_the_range_by_hand():
     # R1 = A1 + A2 + A3 = 12 + 30 + 58 = 100. Published to the nearest 10: R1 = 100 so R1 is in
     # [95, 105]; A3 = 60 so A3 is in [55, 65]; everything else of R2 and the nation likewise. With

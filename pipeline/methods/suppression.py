@@ -877,7 +877,9 @@ def _relation_rows(table: LinkedTable, q: Quantity, fixed: np.ndarray, eligible:
     T = total_of
     with np.errstate(invalid="ignore"):
         rhs = p_max - np.where(fixed[T], hu[T], pu[T]) + (parts @ pl) - fixed_parts_gain
-    use = (p_max > 0) & np.isfinite(rhs) & (rhs > 0)
+    # a shortfall within the audit's tolerance is none (`_reaches`): float dust, as where every
+    # other cell of the relation is known exactly, must not ask for a complement
+    use = (p_max > 0) & np.isfinite(rhs) & (rhs > _WIDTH_TOLERANCE * (1 + p_max))
     for r in np.flatnonzero(use):
         members = parts.indices[parts.indptr[r]:parts.indptr[r + 1]]
         cand = members[eligible[members]]
@@ -889,7 +891,7 @@ def _relation_rows(table: LinkedTable, q: Quantity, fixed: np.ndarray, eligible:
     width_parts = parts @ np.where(fixed, hu - hl, pu - pl)
     with np.errstate(invalid="ignore"):
         rhs_t = need[T] - width_parts
-    use = (need[T] > 0) & np.isfinite(rhs_t) & (rhs_t > 0)
+    use = (need[T] > 0) & np.isfinite(rhs_t) & (rhs_t > _WIDTH_TOLERANCE * (1 + need[T]))
     for r in np.flatnonzero(use):
         members = parts.indices[parts.indptr[r]:parts.indptr[r + 1]]
         cand = members[eligible[members]]
@@ -1460,7 +1462,7 @@ def _milp_over(table, M, n_fixed, lone, fixed, eligible, cost, capacity, cuts, t
     # (b) capacity: single relations first, then the cuts the audit found
     for cells, gains, rhs in capacity:
         rhs = rhs - float(gains[fixed[cells]].sum())  # cells kept hidden from earlier rounds
-        if rhs <= 0:
+        if rhs <= _WIDTH_TOLERANCE:
             continue
         keep = (gains > 1e-12) & eligible[cells]
         gains = np.minimum(gains, rhs)
@@ -1473,7 +1475,7 @@ def _milp_over(table, M, n_fixed, lone, fixed, eligible, cost, capacity, cuts, t
         k += 1
     for cut in cuts:
         rhs = cut.shortfall(fixed)
-        if rhs <= 0:
+        if rhs <= _WIDTH_TOLERANCE * (1 + cut.required):  # as `_reaches`
             continue
         choosable = eligible[cut.index]
         g = np.minimum(cut.gain[choosable], rhs)
