@@ -70,8 +70,9 @@ def reason_descriptions(config) -> dict[str, str]:
         # one code for the threshold and the unanimous rule: a code saying 'all or none' would
         # itself tell a reader what the withheld figure hides
         Reason.COMPLEMENTARY.value:
-            "Withheld so that a confidential figure nearby cannot be worked out by subtraction from "
-            "published totals; this figure itself may be reliable.",
+            "Withheld so that a confidential figure cannot be worked out: by subtraction from published "
+            "totals nearby, or from the sample size and base this row would print, which an indicator over "
+            "the same persons shares with it; this figure itself may be reliable.",
     }
 
 

@@ -28,10 +28,10 @@ CAUTIONS = [
     "linear programming proves, before anything is published, that the published figures leave every "
     "confidential figure within a range at least as wide as the protection level (see "
     "'method.disclosure'). The protection level and the thresholds are defaults from common practice; "
-    "the office's confidentiality rules and local law decide them. The audit takes each indicator's "
-    "table on its own: indicators over the same persons share each cell's sample size and weighted "
-    "base, so a cell withheld in one may have them printed in another's row, and its sample size is "
-    "then known exactly. Figures published outside this release are not part of the audit.",
+    "the office's confidentiality rules and local law decide them. Indicators over the same persons "
+    "print one sample size and weighted base per cell, so they are protected together: a figure "
+    "withheld in one of them as confidential or complementary is withheld in all of them. Figures "
+    "published outside this release are not part of the audit.",
 ]
 
 _NOT_PROTECTED = (
@@ -87,7 +87,8 @@ def disclosure_text(config) -> dict:
                          f"Disclosure Control, Wiley). After {dis.time_limit_seconds:g} s the program gives way "
                          "to a greedy choice, audited the same way.",
         "protection_level": f"For every confidential cell, the range of values a reader can work out from the "
-                            f"published figures of its indicator must be at least max({dis.protection.relative:g} × the value, "
+                            f"published figures of its indicator (and of those over the same persons) must be "
+                            f"at least max({dis.protection.relative:g} × the value, "
                             f"{respondents} × the cell's mean weight) wide for the weighted count of the side "
                             f"with fewer than {k} respondents (with, or without, the characteristic)"
                             + (" or, under the unanimous rule, with none" if dis.unanimous_below else "")

@@ -277,25 +277,21 @@ def test_no_confidential_cell_can_be_narrowed_below_the_protection_level(release
     assert checked >= 20 and nobody >= 4
 
 
-def bases_from_other_indicators(public: pd.DataFrame, indicator: str) -> np.ndarray:
-    """What a reader can take from the other indicators' rows: where another indicator's published
-    sample sizes agree with this one's on every cell both publish (the same persons: same universe,
-    no item non-response), a withheld cell of this indicator has the weighted base that indicator
-    publishes for it (± the rounding). NaN where no such row exists."""
+def same_persons(public: pd.DataFrame) -> list[tuple[str, str]]:
+    """Pairs of indicators a reader can tell cover the same persons (same universe, no item
+    non-response): their published sample sizes agree on every cell both publish (at least 10)."""
     key = ["geo_level", "geo_code", "sex", "age_group"]
-    mine = public[public["indicator"] == indicator].reset_index(drop=True)
-    found = np.full(len(mine), np.nan)
-    for other in public["indicator"].unique():
-        if other == indicator:
-            continue
-        theirs = public[public["indicator"] == other].reset_index(drop=True)
-        assert (theirs[key].to_numpy() == mine[key].to_numpy()).all()
-        both = (mine["status"] != "suppressed").to_numpy() & (theirs["status"] != "suppressed").to_numpy()
-        if both.sum() < 10 or not (mine.loc[both, "sample_size"] == theirs.loc[both, "sample_size"]).all():
-            continue
-        take = (mine["status"] == "suppressed").to_numpy() & (theirs["status"] != "suppressed").to_numpy()
-        found = np.where(take & np.isnan(found), theirs["weighted_base"].to_numpy(dtype=float), found)
-    return found
+    names = list(public["indicator"].unique())
+    rows = {ind: public[public["indicator"] == ind].reset_index(drop=True) for ind in names}
+    pairs = []
+    for i, a in enumerate(names):
+        for b in names[i + 1:]:
+            ta, tb = rows[a], rows[b]
+            assert (ta[key].to_numpy() == tb[key].to_numpy()).all()
+            both = (ta["status"] != "suppressed").to_numpy() & (tb["status"] != "suppressed").to_numpy()
+            if both.sum() >= 10 and (ta.loc[both, "sample_size"] == tb.loc[both, "sample_size"]).all():
+                pairs.append((a, b))
+    return pairs
 
 
 @pytest.fixture(scope="module")
@@ -310,73 +306,110 @@ def full_release(tmp_path_factory):
     return make_release(root / "release", root / "demo", demo_settings())
 
 
-def test_bases_published_in_other_indicators_do_not_narrow_a_confidential_count(full_release):
-    """Indicators over the same persons share each cell's sample size and weighted base, so a cell
-    withheld in one may have its base printed in another's row. A reader who adds count + (base −
-    count) = that base (± the rounding) to both audited tables of the indicator still cannot narrow
-    a protected weighted count below the level (checked by linprog over the joint program; sample
-    sizes are not checked here: they can be read off the other row exactly, see the README)."""
+def test_a_reader_of_both_indicators_over_the_same_persons_cannot_narrow_a_confidential_cell(full_release):
+    """Indicators over the same persons print one sample size and weighted base per cell. A reader
+    of both rows of such a pair sets up one linear program: each indicator's weighted count and
+    base − count over the relations, one sample size table (known wherever either row is
+    published, bounded by both rows' reason codes), count + (base − count) the same for both
+    indicators in every cell and within ± the rounding of a published base. linprog over it: every
+    protected side of a confidential cell, and its sample size, keeps a range at least as wide as
+    the level. Checked: the cells confidential in one indicator only, and cells next to one that
+    only one indicator withholds (the pipeline takes those as known: its proofs must hold here)."""
     release = full_release
     public, cells = release["public_csv"], release["cells"]
-    checked, linked = 0, 0
-    rng = np.random.default_rng(3)
-    for indicator in public["indicator"].unique():
-        rows = np.flatnonzero((public["indicator"] == indicator).to_numpy())
-        pub, truth = public.iloc[rows].reset_index(drop=True), cells.iloc[rows].reset_index(drop=True)
-        base = bases_from_other_indicators(public, indicator)
-        known = np.flatnonzero(np.isfinite(base))
-        n, x = truth["sample_size"].to_numpy(), truth["respondents"].to_numpy()
-        at_risk = [i for i in known if protected_sides(n[i], x[i])]
-        linked += len(at_risk)
-        if not at_risk:
-            continue
-        M = reader_relations(pub, release["lookup"])
-        bounds = reader_bounds(pub)
-        m, cols = M.shape
-        zero = sparse.csr_matrix((m, cols))
-        A_eq = sparse.vstack([sparse.hstack([M, zero]), sparse.hstack([zero, M])])
-        pair = sparse.csr_matrix((np.ones(2 * len(known)), (np.tile(np.arange(len(known)), 2), np.r_[known, cols + known])),
-                                 shape=(len(known), 2 * cols))
-        A_ub, b_ub = sparse.vstack([pair, -pair]), np.r_[base[known] + STEP / 2, -(base[known] - STEP / 2)]
-        box = np.vstack([np.column_stack(bounds["count"]), np.column_stack(bounds["complement"])])
-        for i in rng.choice(at_risk, size=min(10, len(at_risk)), replace=False):
+    pairs = same_persons(public)
+    assert pairs == [("home_owner", "chronic_condition")]
+    a, b = pairs[0]
+    pub = {ind: public[public["indicator"] == ind].reset_index(drop=True) for ind in (a, b)}
+    truth = {ind: cells[cells["indicator"] == ind].reset_index(drop=True) for ind in (a, b)}
+    M = reader_relations(pub[a], release["lookup"])
+    m, cols = M.shape
+    bounds = {ind: reader_bounds(pub[ind]) for ind in (a, b)}
+    # variables, one block of `cols` each: count a, complement a, count b, complement b (the sample
+    # sizes are tied to nothing else: a program of their own, one table known where either row is)
+    box = np.vstack([np.column_stack(bounds[ind][name]) for ind in (a, b) for name in ("count", "complement")])
+    eye = sparse.identity(cols, format="csr")
+    A_eq = sparse.vstack([sparse.block_diag([M] * 4), sparse.hstack([eye, eye, -eye, -eye])], format="csr")
+    ub_rows, ub = [], []
+    for k, ind in enumerate((a, b)):
+        shown = np.flatnonzero((pub[ind]["status"] != "suppressed").to_numpy())
+        base = pub[ind]["weighted_base"].to_numpy(dtype=float)[shown]
+        pair = sparse.csr_matrix((np.ones(2 * len(shown)), (np.tile(np.arange(len(shown)), 2),
+                                                             np.r_[shown, cols + shown] + 2 * k * cols)),
+                                 shape=(len(shown), 4 * cols))
+        ub_rows += [pair, -pair]
+        ub += [base + STEP / 2, -(base - STEP / 2)]
+    A_ub, b_ub = sparse.vstack(ub_rows, format="csr"), np.concatenate(ub)
+    samples = (np.maximum(bounds[a]["sample"][0], bounds[b]["sample"][0]),
+               np.minimum(bounds[a]["sample"][1], bounds[b]["sample"][1]))
+
+    def joint_range(j):
+        ends = []
+        for sign in (1.0, -1.0):
+            c = np.zeros(4 * cols)
+            c[j] = sign
+            res = linprog(c, A_ub=A_ub, b_ub=b_ub, A_eq=A_eq, b_eq=np.zeros(A_eq.shape[0]), bounds=box,
+                          method="highs")
+            assert res.status == 0, res.message
+            ends.append(res.x[j])
+        return ends
+
+    withheld = {ind: (pub[ind]["status"] == "suppressed").to_numpy() for ind in (a, b)}
+    confidential = {ind: pub[ind]["reasons"].fillna("").str.contains("few_respondents").to_numpy() for ind in (a, b)}
+    assert (withheld[a] == withheld[b])[confidential[a] | confidential[b]].all()  # withheld in both
+    A = abs(M)
+    one_only = (withheld[a] != withheld[b]).astype(float)
+    beside = np.asarray((A.T @ (A @ one_only)) > 0).ravel()
+    # the other row withheld for no reason of its own (published, or complementary): the cells a
+    # pattern chosen one indicator at a time would leave with their sample size printed
+    for_others = {ind: ~withheld[ind] | (pub[ind]["reasons"].fillna("") == "complementary").to_numpy()
+                  for ind in (a, b)}
+    rng = np.random.default_rng(7)
+    checked = 0
+    for k, ind in enumerate((a, b)):
+        other = b if ind == a else a
+        mine_only = np.flatnonzero(confidential[ind] & for_others[other])
+        near = np.flatnonzero(confidential[ind] & beside)
+        pick = np.unique(np.r_[rng.choice(mine_only, size=min(4, len(mine_only)), replace=False),
+                               rng.choice(near, size=min(4, len(near)), replace=False)]).astype(int)
+        n, x = truth[ind]["sample_size"].to_numpy(), truth[ind]["respondents"].to_numpy()
+        for i in pick:
             for name in protected_sides(n[i], x[i]):
-                j = i if name == "count" else cols + i
-                ends = []
-                for sign in (1.0, -1.0):
-                    c = np.zeros(2 * cols)
-                    c[j] = sign
-                    res = linprog(c, A_ub=A_ub, b_ub=b_ub, A_eq=A_eq, b_eq=np.zeros(2 * m), bounds=box, method="highs")
-                    assert res.status == 0, res.message
-                    ends.append(res.x[j])
-                value, need = side_level(truth, i, name)
-                assert ends[0] - 1e-6 <= value <= ends[1] + 1e-6
-                assert ends[1] - ends[0] >= need * (1 - 1e-7), (indicator, pub.loc[i, "geo_code"], name, ends, need)
-                checked += 1
-    assert linked >= 20 and checked >= 15
+                lo, hi = joint_range(2 * k * cols + (i if name == "count" else cols + i))
+                value, need = side_level(truth[ind], i, name)
+                assert lo - 1e-6 <= value <= hi + 1e-6
+                assert hi - lo >= need * (1 - 1e-7), (ind, pub[ind].loc[i, "geo_code"], name, lo, hi, need)
+            lo, hi = reader_range(M, samples, i)
+            assert lo - 1e-9 <= n[i] <= hi + 1e-9 and hi - lo >= K - 1e-7, (ind, i, "sample", lo, hi)
+            checked += 1
+    assert checked >= 12
 
 
-def test_manifest_counts_confidential_sample_sizes_printed_in_another_indicator(full_release):
+def test_manifest_names_the_indicators_protected_together_and_none_prints_anothers_confidential_cell(
+        full_release):
     # counted again from the files: indicators whose internal sample sizes agree cell by cell, and a
-    # confidential cell withheld in one of them whose row is published in another
+    # confidential cell withheld in one of them whose row is published in another (none may be)
     cells, public = full_release["cells"], full_release["public_csv"]
     key = ["geo_level", "geo_code", "sex", "age_group"]
     table = cells.assign(withheld=(public["status"] == "suppressed").to_numpy(),
                          confidential=(cells["rule_few_respondents"] | cells["rule_unanimous"]).to_numpy())
     by = {ind: t.set_index(key).sort_index() for ind, t in table.groupby("indicator")}
-    exposed, groups = 0, set()
+    printed, groups = 0, set()
     for a, ta in by.items():
         same = frozenset(b for b, tb in by.items() if ta["sample_size"].equals(tb["sample_size"]))
         if len(same) > 1:
             groups.add(same)
         shown = np.zeros(len(ta), dtype=bool)
-        for b, tb in by.items():
-            if b != a and ta["sample_size"].equals(tb["sample_size"]):
-                shown |= ~tb["withheld"].to_numpy()
-        exposed += int((ta["confidential"].to_numpy() & ta["withheld"].to_numpy() & shown).sum())
-    reported = full_release["manifest"]["disclosure"]["audit"]["sample_sizes_printed_in_another_indicator"]
-    assert {frozenset(g) for g in reported["indicator_groups"]} == groups and groups
-    assert reported["confidential_cells"] == exposed > 0
+        for b in same - {a}:
+            shown |= ~by[b]["withheld"].to_numpy()
+        printed += int((ta["confidential"].to_numpy() & ta["withheld"].to_numpy() & shown).sum())
+    reported = full_release["manifest"]["disclosure"]["audit"]["indicators_over_the_same_persons"]
+    assert {frozenset(g) for g in reported["groups"]} == groups and groups
+    assert reported["confidential_cells_printed_in_another"] == printed == 0
+    indicators = full_release["manifest"]["disclosure"]["indicators"]
+    for group in groups:
+        for ind in group:
+            assert set(indicators[ind]["protected_with"]) == group - {ind}
 
 
 def test_all_or_none_cells_alone_get_complements_and_pass_the_independent_audit(tmp_path_factory, small_demo):
@@ -490,20 +523,33 @@ def test_cells_carry_the_audit_and_the_manifest_its_summary(release):
     assert (p["audit_sample_upper"] - p["audit_sample_lower"]).ge(K - 1e-7).all()
     # every withheld cell (primary, complementary or unreliable) has its range bracketed: the truth
     # within the values proven possible, those within the bounds a reader can work out; published
-    # cells have none
+    # cells have none. Except the counts of a cell withheld as unreliable whose row another indicator
+    # over the same persons publishes (taken as known: no range; its sample size is printed there)
     withheld = cells["status"].eq("suppressed") & cells["sample_size"].gt(0)
-    for value_col, (lo_c, hi_c, out_lo, out_hi) in (
-            ("weighted_count", ("audit_lower", "audit_upper", "audit_outer_lower", "audit_outer_upper")),
+    key = ["geo_level", "geo_code", "sex", "age_group"]
+    elsewhere = np.zeros(len(cells), dtype=bool)
+    same_persons_summary = summary["audit"]["indicators_over_the_same_persons"]
+    for group in same_persons_summary["groups"]:
+        shown = cells[cells["indicator"].isin(group) & cells["status"].ne("suppressed")][key].drop_duplicates()
+        mine = cells["indicator"].isin(group).to_numpy()
+        elsewhere |= mine & cells[key].merge(shown, how="left", indicator=True)["_merge"].eq("both").to_numpy()
+    elsewhere &= withheld.to_numpy()
+    assert elsewhere.sum() == same_persons_summary["unreliable_cells_published_in_another"] > 0
+    assert cells.loc[elsewhere, ["audit_lower", "audit_complement_lower"]].isna().all().all()
+    assert cells.loc[elsewhere, "audit_sample_lower"].eq(cells.loc[elsewhere, "sample_size"]).all()
+    for value_col, (lo_c, hi_c, out_lo, out_hi), audited in (
+            ("weighted_count", ("audit_lower", "audit_upper", "audit_outer_lower", "audit_outer_upper"),
+             withheld & ~elsewhere),
             ("sample_size", ("audit_sample_lower", "audit_sample_upper", "audit_sample_outer_lower",
-                             "audit_sample_outer_upper"))):
-        w = cells[withheld]
+                             "audit_sample_outer_upper"), withheld)):
+        w = cells[audited]
         tol = 1e-6 * np.maximum(1.0, w[value_col].abs())
         assert w[[lo_c, hi_c, out_lo, out_hi]].notna().all().all()
         assert (w[out_lo] <= w[lo_c] + tol).all() and (w[lo_c] <= w[value_col] + tol).all()
         assert (w[value_col] <= w[hi_c] + tol).all() and (w[hi_c] <= w[out_hi] + tol).all()
         assert cells.loc[cells["status"].ne("suppressed"), [lo_c, out_hi]].isna().all().all()
     ranges = summary["audit"]["ranges_of_withheld_cells"]
-    assert ranges["weighted_count"]["withheld_cells"] == int(withheld.sum())
+    assert ranges["weighted_count"]["withheld_cells"] == int((withheld & ~elsewhere).sum())
 
 
 # --------------------------------------------------------------------------------------------

@@ -9,24 +9,26 @@
 2. Complementary suppression (disclosure.complementary): per indicator, further cells are
    withheld, chosen by pipeline.methods.suppression.protect_table, so that no confidential cell can
    be worked out from the published weighted counts and sample sizes through the table's additive
-   relations (parent area = sum of its children; 'all' = sum of its categories).
+   relations (parent area = sum of its children; 'all' = sum of its categories). Indicators over
+   the same persons (the same sample size in every cell) print one sample size and base per cell
+   and are protected as one table (`_over_same_persons`): one pattern for all of them.
 3. Audit: for every confidential cell, a range of values a reader cannot rule out, proven by
    linear programming, must be at least as wide as disclosure.protection asks; otherwise the
    release is refused (ReleaseRefused, exit 4) naming the cells, and nothing is published.
 
 What the audit assumes a reader knows (DESIGN §4): the public file, one indicator's table at a
-time. (Indicators over the same persons share sample sizes and bases: a cell withheld in one can
-have them printed in another's row. The tests check, for a sample of such cells of the demo,
-that the weighted counts stay protected against those bases; the sample size is then known, as
-the README says, and the manifest counts such cells.) Published weighted counts and bases are
-known to ± half the rounding step, and a published estimate, rounded to disclosure.decimals,
-narrows the weighted count further (count = estimate × base); sample sizes are published exactly;
-a withheld cell without sample is known to be 0 (its reason code says so);
-`sample_too_small` on a withheld cell says n < reliability.min_sample, its absence n >= it; no
-subgroup exceeds the published grand total. Three quantities are audited, each over its own
-additive table: the weighted count with the characteristic (for cells where few or none have it),
-the weighted count without it, i.e. base − count (for cells where few or none lack it), and the
-sample size (for every confidential cell). The weighted base is the sum of the first two.
+time, or one group's tables over the same persons: there a cell one of them withholds as
+unreliable while another publishes it is taken as known (its sample size and base are printed;
+treating its counts as known too is pessimistic, so the proofs stay valid, and the tests check a
+reader's program over both tables with count + (base − count) tied between them). Published
+weighted counts and bases are known to ± half the rounding step, and a published estimate,
+rounded to disclosure.decimals, narrows the weighted count further (count = estimate × base);
+sample sizes are published exactly; a withheld cell without sample is known to be 0 (its reason
+code says so); `sample_too_small` on a withheld cell says n < reliability.min_sample, its absence
+n >= it; no subgroup exceeds the published grand total. Three quantities are audited, each over
+its own additive table: the weighted count with the characteristic (for cells where few or none
+have it), the weighted count without it, i.e. base − count (for cells where few or none lack it),
+and the sample size (for every confidential cell). The weighted base is the sum of the first two.
 
 The rules and thresholds defer to the office's confidentiality rules and local law.
 """
@@ -36,6 +38,7 @@ from __future__ import annotations
 import os
 import time
 from concurrent.futures import ThreadPoolExecutor
+from dataclasses import replace
 
 import numpy as np
 import pandas as pd
@@ -108,27 +111,45 @@ def protect_release(frame: pd.DataFrame, severity: np.ndarray, reasons: list[lis
     deadline = started + dis.time_limit_seconds
     indicator_of = f["indicator"].to_numpy()
     blocks = [np.flatnonzero(indicator_of == ind) for ind in pd.unique(indicator_of)]
+    groups = _over_same_persons(f, structure, blocks)
     for rows in blocks:
         structure.table(rows)  # build the shared relations once, before the threads
+    withheld_before = severity >= SEVERITY[Status.SUPPRESSED]  # by the rules so far, per indicator
+    no_sample = f["sample_size"].to_numpy() == 0
+    base_all = f["weighted_base"].to_numpy()
+    costs = [np.where(withheld_before[rows], 0.0, suppression.suppression_cost(
+        structure.table(rows), kind=dis.cost, weighted_base=base_all[rows])) for rows in blocks]
 
-    def protect_indicator(rows: np.ndarray) -> suppression.ProtectionResult:
-        table = structure.table(rows)
-        quantities = _quantities(f.iloc[rows], severity[rows], reasons, rows, primary, config, structure)
-        known = f["sample_size"].to_numpy()[rows] == 0
-        withheld = (severity[rows] >= SEVERITY[Status.SUPPRESSED]) & ~known
-        eligible = (severity[rows] < SEVERITY[Status.SUPPRESSED]) & ~known
-        cost = suppression.suppression_cost(table, kind=dis.cost, weighted_base=f["weighted_base"].to_numpy()[rows])
-        return suppression.protect_table(table, quantities=quantities, withheld=withheld, eligible=eligible,
-                                         cost=cost, time_limit=max(deadline - time.perf_counter(), 0.0))
+    def protect_group(group: list[int]) -> suppression.ProtectionResult:
+        """One table for the indicators of a group (see `_over_same_persons`): they share one
+        pattern, every quantity of each and their one sample size audited over it. A cell one of
+        them withholds as unreliable while another publishes it is no complement: its sample size
+        and base are printed, so the audit takes its figures as known exactly (pessimistic)."""
+        first = blocks[group[0]]
+        everywhere = np.logical_and.reduce([withheld_before[blocks[k]] for k in group])
+        quantities, samples = [], []
+        for k in group:
+            rows = blocks[k]
+            count, complement, sample = _quantities(f.iloc[rows], severity[rows], reasons, rows, primary, config,
+                                                    structure)
+            shown_elsewhere = withheld_before[rows] & ~everywhere
+            quantities += [_known_exactly(q, shown_elsewhere) for q in (count, complement)]
+            samples.append(sample)
+        quantities.append(_one_sample_size(samples))
+        known = no_sample[first]
+        return suppression.protect_table(structure.table(first), quantities=quantities,
+                                         withheld=everywhere & ~known, eligible=~everywhere & ~known,
+                                         cost=np.sum([costs[k] for k in group], axis=0),
+                                         time_limit=max(deadline - time.perf_counter(), 0.0))
 
-    # indicators are independent tables; HiGHS releases the GIL while it solves, so threads
-    # overlap the linear programs of different indicators. Most withheld cells first: they take
-    # longest, and starting them early keeps the threads busy to the end.
-    work = (severity >= SEVERITY[Status.SUPPRESSED]) | primary.cells
-    order = sorted(range(len(blocks)), key=lambda k: -int(work[blocks[k]].sum()))
-    with ThreadPoolExecutor(max_workers=min(len(blocks), os.cpu_count() or 1) or 1) as pool:
-        started_first = {k: pool.submit(protect_indicator, blocks[k]) for k in order}
-        results = [started_first[k].result() for k in range(len(blocks))]
+    # groups are independent tables; HiGHS releases the GIL while it solves, so threads overlap
+    # the linear programs of different groups. Most withheld cells first: they take longest, and
+    # starting them early keeps the threads busy to the end.
+    work = withheld_before | primary.cells
+    order = sorted(range(len(groups)), key=lambda g: -sum(int(work[blocks[k]].sum()) for k in groups[g]))
+    with ThreadPoolExecutor(max_workers=min(len(groups), os.cpu_count() or 1) or 1) as pool:
+        started_first = {g: pool.submit(protect_group, groups[g]) for g in order}
+        results = [started_first[g].result() for g in range(len(groups))]
 
     per_indicator, failures = {}, []
     complementary = np.zeros(len(f), dtype=bool)
@@ -136,33 +157,49 @@ def protect_release(frame: pd.DataFrame, severity: np.ndarray, reasons: list[lis
     audit_values = {col: np.full(len(f), np.nan) for col in AUDIT_COLUMNS[:-1]}
     totals = {"checks": 0, "proven_by_witnesses": 0, "proven_by_exact_range": 0}  # (cell, quantity) pairs
     ranges = {q: {"withheld_cells": 0, "exact": 0, "pinned_down": 0} for q in _QUANTITY_COLUMNS}
-    base_all = f["weighted_base"].to_numpy()
-    for rows, result in zip(blocks, results):
-        complementary[rows] = result.complementary
-        for audit in result.audits:
-            for col, values in zip(_QUANTITY_COLUMNS[audit.name],
-                                   (audit.lower, audit.upper, audit.outer_lower, audit.outer_upper)):
-                audit_values[col][rows] = values
-            audit_ok[rows] &= audit.ok
-            ranges[audit.name]["withheld_cells"] += int(result.hidden.sum())
-            ranges[audit.name]["exact"] += int((result.hidden & audit.exact).sum())
+    names = [str(indicator_of[rows[0]]) for rows in blocks]
+    published_elsewhere = 0
+    for group, result in zip(groups, results):
+        sample = result.audits[-1]
+        for audit, name in [*zip(result.audits[:-1], ["weighted_count", "weighted_complement"] * len(group)),
+                            (sample, "sample_size")]:  # the sample size once per group
+            ranges[name]["withheld_cells"] += int(result.hidden.sum())
+            ranges[name]["exact"] += int((result.hidden & audit.exact).sum())
             # withheld, yet a reader can work the value out to within float dust: harmless for a
             # cell withheld as unreliable (no secret), worth knowing for the office all the same
             width = audit.outer_upper - audit.outer_lower
-            ranges[audit.name]["pinned_down"] += int(
+            ranges[name]["pinned_down"] += int(
                 (result.hidden & (width <= 1e-6 * np.maximum(1.0, np.abs(audit.outer_upper)))).sum())
             checked = (audit.required > 0) & result.hidden
             totals["checks"] += int(checked.sum())
             totals["proven_by_exact_range"] += int((checked & audit.exact & audit.ok).sum())
             totals["proven_by_witnesses"] += int((checked & ~audit.exact & audit.ok).sum())
-        failures += [rows[i] for i in np.flatnonzero(result.failed)]
-        base = base_all[rows]
-        per_indicator[str(indicator_of[rows[0]])] = {
-            "primary_cells": int(primary.cells[rows].sum()),
-            "complementary_cells": int(result.complementary.sum()),
-            "complementary_weighted_base": round(float(base[result.complementary].sum()), 1),
-            "cost": round(result.cost, 3), "method": result.method, "solver_status": result.status,
-            "rounds": result.rounds, "seconds": round(result.seconds, 3)}
+        for i, k in enumerate(group):
+            rows = blocks[k]
+            mine = [*result.audits[2 * i:2 * i + 2], sample]
+            for audit, name in zip(mine, _QUANTITY_COLUMNS):
+                for col, values in zip(_QUANTITY_COLUMNS[name],
+                                       (audit.lower, audit.upper, audit.outer_lower, audit.outer_upper)):
+                    audit_values[col][rows] = values
+                audit_ok[rows] &= audit.ok
+            # withheld here as unreliable, published by another indicator of the group: its sample
+            # size is printed there (exact); its counts the audit took as known (no range: NaN)
+            elsewhere = withheld_before[rows] & ~result.hidden & ~no_sample[rows]
+            for col in _QUANTITY_COLUMNS["sample_size"]:
+                audit_values[col][rows[elsewhere]] = f["sample_size"].to_numpy()[rows[elsewhere]]
+            published_elsewhere += int(elsewhere.sum())
+            failed = mine[0].failed | mine[1].failed | (sample.failed & primary.cells[rows])
+            failures += [rows[j] for j in np.flatnonzero(failed)]
+            # withheld here to protect a cell of this indicator or of another one in the group
+            added = result.hidden & ~withheld_before[rows]
+            complementary[rows] = added
+            per_indicator[names[k]] = {
+                "primary_cells": int(primary.cells[rows].sum()),
+                "complementary_cells": int(added.sum()),
+                "complementary_weighted_base": round(float(base_all[rows][added].sum()), 1),
+                "cost": round(float(costs[k][added].sum()), 3), "method": result.method,
+                "solver_status": result.status, "rounds": result.rounds, "seconds": round(result.seconds, 3),
+                **({"protected_with": [names[j] for j in group if j != k]} if len(group) > 1 else {})}
     for col, values in audit_values.items():
         f[col] = values
 
@@ -195,36 +232,61 @@ def protect_release(frame: pd.DataFrame, severity: np.ndarray, reasons: list[lis
         "protection": _protection_text(config),
         "audit": {"result": "passed", "quantities": list(_QUANTITY_COLUMNS), **totals,
                   "ranges_of_withheld_cells": ranges,
-                  "sample_sizes_printed_in_another_indicator": _shared_sample_sizes(
-                      f, structure, blocks, severity >= SEVERITY[Status.SUPPRESSED], primary.cells)},
+                  "indicators_over_the_same_persons": _printed_elsewhere(
+                      blocks, groups, names, severity >= SEVERITY[Status.SUPPRESSED], primary.cells,
+                      published_elsewhere)},
         "seconds": round(time.perf_counter() - started, 3),
         "indicators": per_indicator,
     }
     return f, summary
 
 
-def _shared_sample_sizes(f: pd.DataFrame, structure: _Structure, blocks: list[np.ndarray], withheld: np.ndarray,
-                        confidential: np.ndarray) -> dict:
-    """Indicators over the same persons (the same sample size in every cell) print each other's
-    sample sizes: a confidential cell withheld in one is published in another's row. The audit
-    takes one indicator at a time and cannot see it; the manifest counts it for the office."""
+def _over_same_persons(f: pd.DataFrame, structure: _Structure, blocks: list[np.ndarray]) -> list[list[int]]:
+    """The indicators (blocks) grouped by the persons they cover: the same cells and the same sample
+    size in every cell (same universe, no item non-response). Their rows print one sample size and
+    one weighted base per cell, so a cell whose row one of them publishes has those figures
+    published for all: they are protected as one table. Each indicator alone otherwise."""
     n = f["sample_size"].to_numpy()
-    names = [str(f["indicator"].iat[rows[0]]) for rows in blocks]
     by_persons: dict[tuple[bytes, bytes], list[int]] = {}
     for k, rows in enumerate(blocks):
         by_persons.setdefault((structure.layout(rows), n[rows].tobytes()), []).append(k)
-    groups = [g for g in by_persons.values() if len(g) > 1]
-    exposed = 0
-    for group in groups:
-        shown = np.zeros(len(blocks[group[0]]), dtype=bool)
-        for k in group:
-            shown |= ~withheld[blocks[k]]
-        exposed += sum(int((confidential[blocks[k]] & withheld[blocks[k]] & shown).sum()) for k in group)
-    return {"indicator_groups": [[names[k] for k in g] for g in groups],
-            "confidential_cells": exposed,
-            "note": "indicators in one group have the same sample size in every cell; a confidential cell "
-                    "withheld in one of them but published in another has its sample size (and weighted "
-                    "base) printed there, which the audit, one indicator at a time, does not take into account"}
+    return list(by_persons.values())
+
+
+def _known_exactly(q: suppression.Quantity, cells: np.ndarray) -> suppression.Quantity:
+    """`q` with the value of `cells` taken as known to a reader whenever they are not hidden in
+    the pattern: fewer values a reader cannot rule out than in truth, so proofs stay valid."""
+    return replace(q, published_lower=np.where(cells, q.value, q.published_lower),
+                   published_upper=np.where(cells, q.value, q.published_upper))
+
+
+def _one_sample_size(samples: list[suppression.Quantity]) -> suppression.Quantity:
+    """The sample size of a group's indicators (the same in every cell) as one quantity: a reader
+    combines what each indicator's reason codes say of a withheld cell, and every indicator's
+    confidential cells need its protection."""
+    return replace(samples[0], hidden_lower=np.maximum.reduce([q.hidden_lower for q in samples]),
+                   hidden_upper=np.minimum.reduce([q.hidden_upper for q in samples]),
+                   required=np.maximum.reduce([q.required for q in samples]))
+
+
+def _printed_elsewhere(blocks: list[np.ndarray], groups: list[list[int]], names: list[str], withheld: np.ndarray,
+                       confidential: np.ndarray, unreliable: int) -> dict:
+    """For the manifest: the groups of indicators protected as one table, how many confidential
+    cells withheld in one of them have their row published in another (0 unless the shared
+    pattern failed to hold) and how many cells one withholds as unreliable and another publishes
+    (`unreliable`: their figures were taken as known)."""
+    printed = 0
+    for group in (g for g in groups if len(g) > 1):
+        shown = np.logical_or.reduce([~withheld[blocks[k]] for k in group])
+        printed += sum(int((confidential[blocks[k]] & withheld[blocks[k]] & shown).sum()) for k in group)
+    return {"groups": [[names[k] for k in g] for g in groups if len(g) > 1],
+            "confidential_cells_printed_in_another": printed,
+            "unreliable_cells_published_in_another": unreliable,
+            "note": "indicators in one group have the same sample size in every cell, so their rows print one "
+                    "sample size and weighted base per cell: they are protected as one table, a cell withheld "
+                    "as confidential or complementary in one is withheld in all of them, and a cell only some "
+                    "of them withhold as unreliable is taken as known to a reader (no complement; its audit "
+                    "columns give the printed sample size and no range for the counts)"}
 
 
 def _protection_text(config) -> dict:
