@@ -425,6 +425,18 @@ def test_a_shortfall_of_float_dust_asks_for_no_complement():
     assert np.flatnonzero(result.hidden).tolist() == [3, 4] and result.ok
 
 
+def test_two_quantities_of_one_name_are_refused():
+    # the points found are kept per quantity name with what they proved per pattern: a second
+    # quantity of the same name, with other bounds, would take proofs that do not hold for it
+    table, values = hierarchy([3, 2, 50, 20, 25, 30])
+    required = np.zeros(9)
+    required[3] = 10
+    q = exact_quantity(values, required)
+    with pytest.raises(ValueError, match="distinct names"):
+        S.protect_table(table, quantities=[q, q], withheld=np.zeros(9, bool), eligible=np.ones(9, bool),
+                        cost=np.ones(9))
+
+
 def test_rounding_intervals_widen_the_range_by_hand():
     # R1 = A1 + A2 + A3 = 12 + 30 + 58 = 100. Published to the nearest 10: R1 = 100 so R1 is in
     # [95, 105]; A3 = 60 so A3 is in [55, 65]; everything else of R2 and the nation likewise. With

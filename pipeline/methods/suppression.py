@@ -1322,6 +1322,11 @@ def protect_table(table: LinkedTable, *, quantities: list[Quantity], withheld, e
         raise ValueError(f"withheld, eligible and cost need one entry per cell ({n})")
     if method not in ("milp", "greedy"):
         raise ValueError(f"method ({method!r}) must be 'milp' or 'greedy'")
+    names = [q.name for q in quantities]
+    if len(set(names)) != len(names):
+        # the points found are kept per quantity, by name, with what was proven per pattern: two
+        # quantities of one name would take each other's proofs, valid only within their own bounds
+        raise ValueError(f"quantities need distinct names; got {names}")
     primary = np.zeros(n, dtype=bool)
     for q in quantities:
         primary |= q.required > 0

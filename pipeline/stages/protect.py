@@ -111,6 +111,7 @@ def protect_release(frame: pd.DataFrame, severity: np.ndarray, reasons: list[lis
     deadline = started + dis.time_limit_seconds
     indicator_of = f["indicator"].to_numpy()
     blocks = [np.flatnonzero(indicator_of == ind) for ind in pd.unique(indicator_of)]
+    names = [str(indicator_of[rows[0]]) for rows in blocks]
     groups = _over_same_persons(f, structure, blocks)
     for rows in blocks:
         structure.table(rows)  # build the shared relations once, before the threads
@@ -133,7 +134,8 @@ def protect_release(frame: pd.DataFrame, severity: np.ndarray, reasons: list[lis
             count, complement, sample = _quantities(f.iloc[rows], severity[rows], reasons, rows, primary, config,
                                                     structure)
             shown_elsewhere = withheld_before[rows] & ~everywhere
-            quantities += [_known_exactly(q, shown_elsewhere) for q in (count, complement)]
+            quantities += [replace(_known_exactly(q, shown_elsewhere), name=f"{q.name} of {names[k]}")
+                           for q in (count, complement)]
             samples.append(sample)
         quantities.append(_one_sample_size(samples))
         known = no_sample[first]
@@ -157,7 +159,6 @@ def protect_release(frame: pd.DataFrame, severity: np.ndarray, reasons: list[lis
     audit_values = {col: np.full(len(f), np.nan) for col in AUDIT_COLUMNS[:-1]}
     totals = {"checks": 0, "proven_by_witnesses": 0, "proven_by_exact_range": 0}  # (cell, quantity) pairs
     ranges = {q: {"withheld_cells": 0, "exact": 0, "pinned_down": 0} for q in _QUANTITY_COLUMNS}
-    names = [str(indicator_of[rows[0]]) for rows in blocks]
     published_elsewhere = 0
     for group, result in zip(groups, results):
         sample = result.audits[-1]
