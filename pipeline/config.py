@@ -162,6 +162,9 @@ class DisclosureConfig(_Model):
     cost: Literal["cells", "weighted_base"] = "cells"
     time_limit_seconds: float = Field(default=60, gt=0)
     decimals: int | None = Field(default=4, ge=0, le=12)   # estimates and intervals in the public files
+    # indicators over the same persons print one sample size and base per cell: 'together' protects
+    # them as one table (one pattern); 'apart' one by one, their sample sizes then printed for each other
+    same_persons: Literal["together", "apart"] = "together"
 
 
 class OutputConfig(_Model):

@@ -34,6 +34,13 @@ CAUTIONS = [
     "published outside this release are not part of the audit.",
 ]
 
+_APART = (
+    "Indicators over the same persons were protected one by one (disclosure.same_persons: apart): a "
+    "figure withheld as confidential in one of them may have its sample size and weighted base printed "
+    "in another's row, and the audit proves its protection within its own indicator's table only. "
+    "Figures published outside this release are not part of the audit.")
+_TOGETHER = CAUTIONS[-1][CAUTIONS[-1].index("Indicators over the same persons"):]
+
 _NOT_PROTECTED = (
     "Complementary suppression is switched off for this release (disclosure.complementary: false): a "
     "withheld cell may be recoverable by subtraction from published totals (a parent area minus its "
@@ -41,10 +48,13 @@ _NOT_PROTECTED = (
 
 
 def cautions(config) -> list[str]:
-    """The cautions of a release: with complementary suppression off, the last one says so instead."""
-    if config.disclosure.complementary:
-        return list(CAUTIONS)
-    return CAUTIONS[:-1] + [_NOT_PROTECTED]
+    """The cautions of a release: with complementary suppression off, the last one says so instead;
+    with indicators over the same persons protected apart, its end says what that leaves open."""
+    if not config.disclosure.complementary:
+        return CAUTIONS[:-1] + [_NOT_PROTECTED]
+    if config.disclosure.same_persons == "apart":
+        return CAUTIONS[:-1] + [CAUTIONS[-1].replace(_TOGETHER, _APART)]
+    return list(CAUTIONS)
 
 
 def _rounded(config) -> str:

@@ -303,7 +303,7 @@ def full_release(tmp_path_factory):
     root = tmp_path_factory.mktemp("full")
     (root / "demo" / "data" / "raw").mkdir(parents=True)
     write_demo(root / "demo" / "data" / "raw")
-    return make_release(root / "release", root / "demo", demo_settings())
+    return {**make_release(root / "release", root / "demo", demo_settings()), "demo": root / "demo"}
 
 
 def test_a_reader_of_both_indicators_over_the_same_persons_cannot_narrow_a_confidential_cell(full_release):
@@ -385,11 +385,10 @@ def test_a_reader_of_both_indicators_over_the_same_persons_cannot_narrow_a_confi
     assert checked >= 12
 
 
-def test_manifest_names_the_indicators_protected_together_and_none_prints_anothers_confidential_cell(
-        full_release):
-    # counted again from the files: indicators whose internal sample sizes agree cell by cell, and a
-    # confidential cell withheld in one of them whose row is published in another (none may be)
-    cells, public = full_release["cells"], full_release["public_csv"]
+def printed_in_another(release) -> tuple[set, int]:
+    """Counted again from the files: the groups of indicators whose internal sample sizes agree
+    cell by cell, and the confidential cells withheld in one of them whose row another publishes."""
+    cells, public = release["cells"], release["public_csv"]
     key = ["geo_level", "geo_code", "sex", "age_group"]
     table = cells.assign(withheld=(public["status"] == "suppressed").to_numpy(),
                          confidential=(cells["rule_few_respondents"] | cells["rule_unanimous"]).to_numpy())
@@ -403,13 +402,36 @@ def test_manifest_names_the_indicators_protected_together_and_none_prints_anothe
         for b in same - {a}:
             shown |= ~by[b]["withheld"].to_numpy()
         printed += int((ta["confidential"].to_numpy() & ta["withheld"].to_numpy() & shown).sum())
+    return groups, printed
+
+
+def test_manifest_names_the_indicators_protected_together_and_none_prints_anothers_confidential_cell(
+        full_release):
+    groups, printed = printed_in_another(full_release)
     reported = full_release["manifest"]["disclosure"]["audit"]["indicators_over_the_same_persons"]
-    assert {frozenset(g) for g in reported["groups"]} == groups and groups
+    assert {frozenset(g) for g in reported["groups"]} == groups and groups and reported["protected"] == "together"
     assert reported["confidential_cells_printed_in_another"] == printed == 0
     indicators = full_release["manifest"]["disclosure"]["indicators"]
     for group in groups:
         for ind in group:
             assert set(indicators[ind]["protected_with"]) == group - {ind}
+
+
+def test_protected_apart_the_release_counts_the_sample_sizes_it_prints_and_says_so(tmp_path_factory, full_release):
+    # the office's choice (disclosure.same_persons: apart): each indicator on its own, fewer cells
+    # withheld, and the sample sizes of confidential cells printed in the partner's row, counted
+    settings = demo_settings()
+    settings["disclosure"]["same_persons"] = "apart"
+    release = make_release(tmp_path_factory.mktemp("apart"), full_release["demo"], settings)
+    groups, printed = printed_in_another(release)
+    disclosure = release["manifest"]["disclosure"]
+    reported = disclosure["audit"]["indicators_over_the_same_persons"]
+    assert {frozenset(g) for g in reported["groups"]} == groups and reported["protected"] == "apart"
+    assert reported["confidential_cells_printed_in_another"] == printed > 0
+    assert disclosure["complementary_cells"] < full_release["manifest"]["disclosure"]["complementary_cells"]
+    assert not any("protected_with" in v for v in disclosure["indicators"].values())
+    meta = json.loads((release["dir"] / "public" / "metadata.json").read_text())
+    assert "same_persons: apart" in " ".join(meta["cautions"])
 
 
 def test_all_or_none_cells_alone_get_complements_and_pass_the_independent_audit(tmp_path_factory, small_demo):

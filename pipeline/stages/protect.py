@@ -112,7 +112,8 @@ def protect_release(frame: pd.DataFrame, severity: np.ndarray, reasons: list[lis
     indicator_of = f["indicator"].to_numpy()
     blocks = [np.flatnonzero(indicator_of == ind) for ind in pd.unique(indicator_of)]
     names = [str(indicator_of[rows[0]]) for rows in blocks]
-    groups = _over_same_persons(f, structure, blocks)
+    over_same_persons = _over_same_persons(f, structure, blocks)
+    groups = over_same_persons if dis.same_persons == "together" else [[k] for k in range(len(blocks))]
     for rows in blocks:
         structure.table(rows)  # build the shared relations once, before the threads
     withheld_before = severity >= SEVERITY[Status.SUPPRESSED]  # by the rules so far, per indicator
@@ -234,8 +235,8 @@ def protect_release(frame: pd.DataFrame, severity: np.ndarray, reasons: list[lis
         "audit": {"result": "passed", "quantities": list(_QUANTITY_COLUMNS), **totals,
                   "ranges_of_withheld_cells": ranges,
                   "indicators_over_the_same_persons": _printed_elsewhere(
-                      blocks, groups, names, severity >= SEVERITY[Status.SUPPRESSED], primary.cells,
-                      published_elsewhere)},
+                      blocks, over_same_persons, names, severity >= SEVERITY[Status.SUPPRESSED], primary.cells,
+                      published_elsewhere, dis.same_persons)},
         "seconds": round(time.perf_counter() - started, 3),
         "indicators": per_indicator,
     }
@@ -271,23 +272,28 @@ def _one_sample_size(samples: list[suppression.Quantity]) -> suppression.Quantit
 
 
 def _printed_elsewhere(blocks: list[np.ndarray], groups: list[list[int]], names: list[str], withheld: np.ndarray,
-                       confidential: np.ndarray, unreliable: int) -> dict:
-    """For the manifest: the groups of indicators protected as one table, how many confidential
-    cells withheld in one of them have their row published in another (0 unless the shared
-    pattern failed to hold) and how many cells one withholds as unreliable and another publishes
-    (`unreliable`: their figures were taken as known)."""
+                       confidential: np.ndarray, unreliable: int, mode: str) -> dict:
+    """For the manifest: the groups of indicators over the same persons, how many confidential
+    cells withheld in one of them have their row, with its sample size and base, published in
+    another (0 when protected together, unless the shared pattern failed to hold), and how many
+    cells one withholds as unreliable and another publishes (`unreliable`: their figures were taken
+    as known; 0 when protected apart)."""
     printed = 0
     for group in (g for g in groups if len(g) > 1):
         shown = np.logical_or.reduce([~withheld[blocks[k]] for k in group])
         printed += sum(int((confidential[blocks[k]] & withheld[blocks[k]] & shown).sum()) for k in group)
-    return {"groups": [[names[k] for k in g] for g in groups if len(g) > 1],
+    together = ("they are protected as one table: a cell withheld as confidential or complementary in one is "
+                "withheld in all of them, and a cell only some of them withhold as unreliable is taken as known "
+                "to a reader (no complement; its audit columns give the printed sample size and no range for "
+                "the counts)")
+    apart = ("they were protected one by one (disclosure.same_persons: apart): a confidential cell withheld in "
+             "one of them whose row another publishes has its sample size printed there, and its counts are "
+             "proven protected within its own indicator's table only")
+    return {"groups": [[names[k] for k in g] for g in groups if len(g) > 1], "protected": mode,
             "confidential_cells_printed_in_another": printed,
             "unreliable_cells_published_in_another": unreliable,
             "note": "indicators in one group have the same sample size in every cell, so their rows print one "
-                    "sample size and weighted base per cell: they are protected as one table, a cell withheld "
-                    "as confidential or complementary in one is withheld in all of them, and a cell only some "
-                    "of them withhold as unreliable is taken as known to a reader (no complement; its audit "
-                    "columns give the printed sample size and no range for the counts)"}
+                    "sample size and weighted base per cell; " + (together if mode == "together" else apart)}
 
 
 def _protection_text(config) -> dict:
