@@ -323,7 +323,7 @@ def test_a_reader_of_both_indicators_over_the_same_persons_cannot_narrow_a_confi
     pub = {ind: public[public["indicator"] == ind].reset_index(drop=True) for ind in (a, b)}
     truth = {ind: cells[cells["indicator"] == ind].reset_index(drop=True) for ind in (a, b)}
     M = reader_relations(pub[a], release["lookup"])
-    m, cols = M.shape
+    cols = M.shape[1]
     bounds = {ind: reader_bounds(pub[ind]) for ind in (a, b)}
     # variables, one block of `cols` each: count a, complement a, count b, complement b (the sample
     # sizes are tied to nothing else: a program of their own, one table known where either row is)
