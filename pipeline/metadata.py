@@ -11,6 +11,24 @@ from pipeline.flags import Status, reason_descriptions
 from pipeline.methods import intervals, variance
 from pipeline.stages.ingest import REJECT_DESCRIPTIONS
 
+_PROTECTED = (
+    "Confidential figures cannot be narrowed down from the published ones below a protection level: "
+    "where one could be recovered by subtraction (a parent area minus its other children, or 'all' minus the other "
+    "categories), further figures are withheld with it (reason 'complementary'), and an audit by "
+    "linear programming proves, before anything is published, that the published figures leave every "
+    "confidential figure within a range at least as wide as the protection level (see "
+    "'method.disclosure'). The protection level and the thresholds are defaults from common practice; "
+    "the office's confidentiality rules and local law decide them.")
+# what disclosure.same_persons did with indicators over the same persons, then the audit's edge
+_SAME_PERSONS = {
+    "together": "Indicators over the same persons print one sample size and weighted base per cell, so they "
+                "are protected together: a figure withheld in one of them as confidential or complementary is "
+                "withheld in all of them.",
+    "apart": "Indicators over the same persons were protected one by one (disclosure.same_persons: apart): a "
+             "figure withheld as confidential in one of them may have its sample size and weighted base printed "
+             "in another's row, and the audit proves its protection within its own indicator's table only."}
+_OUTSIDE = "Figures published outside this release are not part of the audit."
+
 CAUTIONS = [
     "These figures are estimates from a sample and carry sampling error; the interval and the margin "
     "of error describe that error under the survey design, not errors of coverage, non-response or "
@@ -22,24 +40,7 @@ CAUTIONS = [
     "from its own quality standards before publishing.",
     "The disclosure rules here are a minimum. What may be published is decided by the office's "
     "confidentiality rules and by local law and policy, which take precedence over these defaults.",
-    "Confidential figures cannot be narrowed down from the published ones below a protection level: "
-    "where one could be recovered by subtraction (a parent area minus its other children, or 'all' minus the other "
-    "categories), further figures are withheld with it (reason 'complementary'), and an audit by "
-    "linear programming proves, before anything is published, that the published figures leave every "
-    "confidential figure within a range at least as wide as the protection level (see "
-    "'method.disclosure'). The protection level and the thresholds are defaults from common practice; "
-    "the office's confidentiality rules and local law decide them. Indicators over the same persons "
-    "print one sample size and weighted base per cell, so they are protected together: a figure "
-    "withheld in one of them as confidential or complementary is withheld in all of them. Figures "
-    "published outside this release are not part of the audit.",
 ]
-
-_APART = (
-    "Indicators over the same persons were protected one by one (disclosure.same_persons: apart): a "
-    "figure withheld as confidential in one of them may have its sample size and weighted base printed "
-    "in another's row, and the audit proves its protection within its own indicator's table only. "
-    "Figures published outside this release are not part of the audit.")
-_TOGETHER = CAUTIONS[-1][CAUTIONS[-1].index("Indicators over the same persons"):]
 
 _NOT_PROTECTED = (
     "Complementary suppression is switched off for this release (disclosure.complementary: false): a "
@@ -48,13 +49,12 @@ _NOT_PROTECTED = (
 
 
 def cautions(config) -> list[str]:
-    """The cautions of a release: with complementary suppression off, the last one says so instead;
-    with indicators over the same persons protected apart, its end says what that leaves open."""
-    if not config.disclosure.complementary:
-        return CAUTIONS[:-1] + [_NOT_PROTECTED]
-    if config.disclosure.same_persons == "apart":
-        return CAUTIONS[:-1] + [CAUTIONS[-1].replace(_TOGETHER, _APART)]
-    return list(CAUTIONS)
+    """The cautions of a release, the last one on disclosure control: what it proves and how
+    indicators over the same persons were protected, or, switched off, that nothing was."""
+    dis = config.disclosure
+    if not dis.complementary:
+        return CAUTIONS + [_NOT_PROTECTED]
+    return CAUTIONS + [f"{_PROTECTED} {_SAME_PERSONS[dis.same_persons]} {_OUTSIDE}"]
 
 
 def _rounded(config) -> str:

@@ -879,7 +879,7 @@ def _relation_rows(table: LinkedTable, q: Quantity, fixed: np.ndarray, eligible:
         rhs = p_max - np.where(fixed[T], hu[T], pu[T]) + (parts @ pl) - fixed_parts_gain
     # a shortfall within the audit's tolerance is none (`_reaches`): float dust, as where every
     # other cell of the relation is known exactly, must not ask for a complement
-    use = (p_max > 0) & np.isfinite(rhs) & (rhs > _WIDTH_TOLERANCE * (1 + p_max))
+    use = (p_max > 0) & np.isfinite(rhs) & _falls_short(rhs, p_max)
     for r in np.flatnonzero(use):
         members = parts.indices[parts.indptr[r]:parts.indptr[r + 1]]
         cand = members[eligible[members]]
@@ -891,7 +891,7 @@ def _relation_rows(table: LinkedTable, q: Quantity, fixed: np.ndarray, eligible:
     width_parts = parts @ np.where(fixed, hu - hl, pu - pl)
     with np.errstate(invalid="ignore"):
         rhs_t = need[T] - width_parts
-    use = (need[T] > 0) & np.isfinite(rhs_t) & (rhs_t > _WIDTH_TOLERANCE * (1 + need[T]))
+    use = (need[T] > 0) & np.isfinite(rhs_t) & _falls_short(rhs_t, need[T])
     for r in np.flatnonzero(use):
         members = parts.indices[parts.indptr[r]:parts.indptr[r + 1]]
         cand = members[eligible[members]]
@@ -1110,6 +1110,11 @@ def _cycle_sums(C: sparse.csr_matrix, rows: np.ndarray, orientation: np.ndarray,
 
 def _reaches(width, required) -> np.ndarray:
     return width >= required * (1 - _WIDTH_TOLERANCE) - _WIDTH_TOLERANCE
+
+
+def _falls_short(shortfall, required) -> np.ndarray:
+    """A width `shortfall` below `required` that `_reaches` would not forgive (float dust is none)."""
+    return shortfall > _WIDTH_TOLERANCE * (1 + required)
 
 
 def _prove(q: Quantity, witnesses: _Witnesses, hidden: np.ndarray, targets: np.ndarray, proven: np.ndarray) -> None:
@@ -1467,7 +1472,7 @@ def _milp_over(table, M, n_fixed, lone, fixed, eligible, cost, capacity, cuts, t
     # (b) capacity: single relations first, then the cuts the audit found
     for cells, gains, rhs in capacity:
         rhs = rhs - float(gains[fixed[cells]].sum())  # cells kept hidden from earlier rounds
-        if rhs <= _WIDTH_TOLERANCE:
+        if rhs <= _WIDTH_TOLERANCE:  # float dust: `_relation_rows` kept only real shortfalls
             continue
         keep = (gains > 1e-12) & eligible[cells]
         gains = np.minimum(gains, rhs)
@@ -1480,7 +1485,7 @@ def _milp_over(table, M, n_fixed, lone, fixed, eligible, cost, capacity, cuts, t
         k += 1
     for cut in cuts:
         rhs = cut.shortfall(fixed)
-        if rhs <= _WIDTH_TOLERANCE * (1 + cut.required):  # as `_reaches`
+        if not _falls_short(rhs, cut.required):
             continue
         choosable = eligible[cut.index]
         g = np.minimum(cut.gain[choosable], rhs)

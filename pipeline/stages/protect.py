@@ -112,12 +112,13 @@ def protect_release(frame: pd.DataFrame, severity: np.ndarray, reasons: list[lis
     indicator_of = f["indicator"].to_numpy()
     blocks = [np.flatnonzero(indicator_of == ind) for ind in pd.unique(indicator_of)]
     names = [str(indicator_of[rows[0]]) for rows in blocks]
-    over_same_persons = _over_same_persons(f, structure, blocks)
+    sample_sizes = f["sample_size"].to_numpy()
+    over_same_persons = _over_same_persons(sample_sizes, structure, blocks)
     groups = over_same_persons if dis.same_persons == "together" else [[k] for k in range(len(blocks))]
     for rows in blocks:
         structure.table(rows)  # build the shared relations once, before the threads
     withheld_before = severity >= SEVERITY[Status.SUPPRESSED]  # by the rules so far, per indicator
-    no_sample = f["sample_size"].to_numpy() == 0
+    no_sample = sample_sizes == 0
     base_all = f["weighted_base"].to_numpy()
     costs = [np.where(withheld_before[rows], 0.0, suppression.suppression_cost(
         structure.table(rows), kind=dis.cost, weighted_base=base_all[rows])) for rows in blocks]
@@ -135,7 +136,7 @@ def protect_release(frame: pd.DataFrame, severity: np.ndarray, reasons: list[lis
             count, complement, sample = _quantities(f.iloc[rows], severity[rows], reasons, rows, primary, config,
                                                     structure)
             shown_elsewhere = withheld_before[rows] & ~everywhere
-            quantities += [replace(_known_exactly(q, shown_elsewhere), name=f"{q.name} of {names[k]}")
+            quantities += [_known_exactly(q, shown_elsewhere, name=f"{q.name} of {names[k]}")
                            for q in (count, complement)]
             samples.append(sample)
         quantities.append(_one_sample_size(samples))
@@ -163,32 +164,32 @@ def protect_release(frame: pd.DataFrame, severity: np.ndarray, reasons: list[lis
     published_elsewhere = 0
     for group, result in zip(groups, results):
         sample = result.audits[-1]
-        for audit, name in [*zip(result.audits[:-1], ["weighted_count", "weighted_complement"] * len(group)),
-                            (sample, "sample_size")]:  # the sample size once per group
-            ranges[name]["withheld_cells"] += int(result.hidden.sum())
-            ranges[name]["exact"] += int((result.hidden & audit.exact).sum())
-            # withheld, yet a reader can work the value out to within float dust: harmless for a
-            # cell withheld as unreliable (no secret), worth knowing for the office all the same
-            width = audit.outer_upper - audit.outer_lower
-            ranges[name]["pinned_down"] += int(
-                (result.hidden & (width <= 1e-6 * np.maximum(1.0, np.abs(audit.outer_upper)))).sum())
-            checked = (audit.required > 0) & result.hidden
-            totals["checks"] += int(checked.sum())
-            totals["proven_by_exact_range"] += int((checked & audit.exact & audit.ok).sum())
-            totals["proven_by_witnesses"] += int((checked & ~audit.exact & audit.ok).sum())
         for i, k in enumerate(group):
             rows = blocks[k]
-            mine = [*result.audits[2 * i:2 * i + 2], sample]
+            mine = [*result.audits[2 * i:2 * i + 2], sample]  # in the order of _QUANTITY_COLUMNS
             for audit, name in zip(mine, _QUANTITY_COLUMNS):
                 for col, values in zip(_QUANTITY_COLUMNS[name],
                                        (audit.lower, audit.upper, audit.outer_lower, audit.outer_upper)):
                     audit_values[col][rows] = values
                 audit_ok[rows] &= audit.ok
+                if audit is sample and i:
+                    continue  # the group's one sample size is counted once
+                ranges[name]["withheld_cells"] += int(result.hidden.sum())
+                ranges[name]["exact"] += int((result.hidden & audit.exact).sum())
+                # withheld, yet a reader can work the value out to within float dust: harmless for a
+                # cell withheld as unreliable (no secret), worth knowing for the office all the same
+                width = audit.outer_upper - audit.outer_lower
+                ranges[name]["pinned_down"] += int(
+                    (result.hidden & (width <= 1e-6 * np.maximum(1.0, np.abs(audit.outer_upper)))).sum())
+                checked = (audit.required > 0) & result.hidden
+                totals["checks"] += int(checked.sum())
+                totals["proven_by_exact_range"] += int((checked & audit.exact & audit.ok).sum())
+                totals["proven_by_witnesses"] += int((checked & ~audit.exact & audit.ok).sum())
             # withheld here as unreliable, published by another indicator of the group: its sample
             # size is printed there (exact); its counts the audit took as known (no range: NaN)
             elsewhere = withheld_before[rows] & ~result.hidden & ~no_sample[rows]
             for col in _QUANTITY_COLUMNS["sample_size"]:
-                audit_values[col][rows[elsewhere]] = f["sample_size"].to_numpy()[rows[elsewhere]]
+                audit_values[col][rows[elsewhere]] = sample_sizes[rows[elsewhere]]
             published_elsewhere += int(elsewhere.sum())
             failed = mine[0].failed | mine[1].failed | (sample.failed & primary.cells[rows])
             failures += [rows[j] for j in np.flatnonzero(failed)]
@@ -243,22 +244,23 @@ def protect_release(frame: pd.DataFrame, severity: np.ndarray, reasons: list[lis
     return f, summary
 
 
-def _over_same_persons(f: pd.DataFrame, structure: _Structure, blocks: list[np.ndarray]) -> list[list[int]]:
+def _over_same_persons(n: np.ndarray, structure: _Structure, blocks: list[np.ndarray]) -> list[list[int]]:
     """The indicators (blocks) grouped by the persons they cover: the same cells and the same sample
     size in every cell (same universe, no item non-response). Their rows print one sample size and
     one weighted base per cell, so a cell whose row one of them publishes has those figures
-    published for all: they are protected as one table. Each indicator alone otherwise."""
-    n = f["sample_size"].to_numpy()
+    published for all: they are protected as one table. Each indicator alone otherwise. `n`: the
+    cells' sample sizes."""
     by_persons: dict[tuple[bytes, bytes], list[int]] = {}
     for k, rows in enumerate(blocks):
         by_persons.setdefault((structure.layout(rows), n[rows].tobytes()), []).append(k)
     return list(by_persons.values())
 
 
-def _known_exactly(q: suppression.Quantity, cells: np.ndarray) -> suppression.Quantity:
-    """`q` with the value of `cells` taken as known to a reader whenever they are not hidden in
-    the pattern: fewer values a reader cannot rule out than in truth, so proofs stay valid."""
-    return replace(q, published_lower=np.where(cells, q.value, q.published_lower),
+def _known_exactly(q: suppression.Quantity, cells: np.ndarray, *, name: str) -> suppression.Quantity:
+    """`q`, named `name`, with the value of `cells` taken as known to a reader whenever they are
+    not hidden in the pattern: fewer values a reader cannot rule out than in truth, so proofs stay
+    valid."""
+    return replace(q, name=name, published_lower=np.where(cells, q.value, q.published_lower),
                    published_upper=np.where(cells, q.value, q.published_upper))
 
 
