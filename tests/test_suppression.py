@@ -210,6 +210,74 @@ def test_cycle_proofs_take_each_target_at_least_as_far_as_its_best_cycle(seed):
         assert low - 1e-7 <= values[i] + lo[i] and values[i] + hi[i] <= high + 1e-7
 
 
+def geography_by_two_categories(area_values: np.ndarray):
+    """The nation, regions and areas of PARENT, each cell split by one domain of two categories
+    ('all' and both categories at every unit): a sibling area's categories trade with an area's."""
+    area_values = np.asarray(area_values, dtype=float)   # 6 areas × 2 categories
+    unit_values = np.zeros((9, 2))
+    unit_values[3:] = area_values
+    unit_values[1], unit_values[2] = area_values[:3].sum(axis=0), area_values[3:].sum(axis=0)
+    unit_values[0] = area_values.sum(axis=0)
+    units, domains, values = [], [], []
+    for u in range(9):
+        for c in (-1, 0, 1):
+            units.append(u)
+            domains.append([c])
+            values.append(unit_values[u].sum() if c < 0 else unit_values[u, c])
+    units = np.array(units)
+    table = S.linked_table(unit=units, parent=PARENT, level=np.array(LEVEL_OF_UNIT)[units],
+                           domains=np.array(domains), categories=[2])
+    return table, np.array(values)
+
+
+def best_single_cycles(table, values, lower, upper, cell) -> tuple[float, float]:
+    """How far the best single cycle through `cell` takes it up and down: every cycle of
+    `table.cycles`, moved by the largest step its cells' bounds allow (from the definition)."""
+    C = table.cycles.toarray()
+    rise = fall = 0.0
+    for delta in C[C[:, cell] != 0]:
+        m = delta != 0
+        dm, vm, lm, um = delta[m], values[m], lower[m], upper[m]
+        t_up = max(np.where(dm > 0, (um - vm) / dm, (lm - vm) / dm).min(), 0.0)
+        t_down = max(np.where(dm > 0, (vm - lm) / dm, (vm - um) / dm).min(), 0.0)
+        d = delta[cell]
+        rise = max(rise, t_up * d if d > 0 else t_down * -d)
+        fall = max(fall, t_down * d if d > 0 else t_up * -d)
+    return rise, fall
+
+
+@pytest.mark.parametrize("seed", range(8))
+def test_best_cycles_prove_exactly_the_targets_one_cycle_each_way_proves(seed):
+    # reference: the best cycle through each target up and down, cycle by cycle over every cycle
+    # of the table (`best_single_cycles`). The best cycles are found circuit by circuit, pairing
+    # each area with its sibling of most room; a target is left to the sums of cycles exactly when
+    # those two best cycles fall short of its width
+    rng = np.random.default_rng(seed)
+    if seed % 2:
+        table, _, values = two_way(rng.integers(0, 12, (3, 4)).astype(float))  # the top unit alone
+    else:
+        table, values = geography_by_two_categories(rng.integers(0, 12, (6, 2)))
+    hidden = rng.random(len(values)) < 0.7
+    required = np.where(hidden, rng.choice([2.0, 6.0, 12.0], len(values)), 0.0)
+    q = exact_quantity(values, required, step=float(rng.choice([0, 5])))
+    lower, upper = S._bounds(q, hidden)
+    targets = np.flatnonzero(hidden)
+    witnesses = S._Witnesses(table.n_cells)
+    left = S._best_cycles(table, q, targets, upper - values, values - lower, witnesses)
+    points = witnesses.matrix().toarray()
+    assert np.abs(table.relations @ points.T).max(initial=0) < 1e-9
+    assert (values + points >= lower - 1e-9).all() and (values + points <= upper + 1e-9).all()
+    lo, hi = witnesses.observed(q, hidden)
+    for i in targets:
+        rise, fall = best_single_cycles(table, values, lower, upper, i)
+        if i in left:
+            assert rise + fall < required[i] * (1 - 1e-9)
+        else:
+            assert rise + fall >= required[i] * (1 - 1e-9)
+            assert hi[i] >= rise - 1e-9 and -lo[i] >= fall - 1e-9
+    assert len(table.circuits) and len(left) < len(targets)
+
+
 def test_cycle_proofs_add_cycles_up_where_one_falls_short():
     # interior [[1, 2, 2], [2, 9, 9], [2, 9, 9]] hidden, margins published exactly. Raising cell
     # (0, 0) by t lowers its row and its column by t elsewhere: each rectangle through it moves it
