@@ -168,6 +168,16 @@ class SiblingCircuits:
     cells: np.ndarray
     step: np.ndarray
     group: np.ndarray
+    n_cells: int
+
+    @cached_property
+    def rooms_at(self) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+        """Where the room to run +φ and to run −φ sits for each cell of each row, in the array
+        [room up of every cell, room down of every cell], and |φ| (None when every step is ±1)."""
+        rises = self.step > 0
+        size = np.abs(self.step)
+        return (self.cells + self.n_cells * ~rises, self.cells + self.n_cells * rises,
+                None if np.all(size == 1) else size)
 
     @cached_property
     def by_group(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -425,7 +435,7 @@ def _short_cycles(relations, *, unit, parent, level, code, base, find, max_size:
             by_size.setdefault(len(phi), []).append((cells, np.tile(phi, (len(cells), 1)), group))
     return C[kept], tuple(SiblingCircuits(cells=np.concatenate([c for c, _, _ in parts]),
                                           step=np.concatenate([f for _, f, _ in parts]),
-                                          group=np.concatenate([g for _, _, g in parts]))
+                                          group=np.concatenate([g for _, _, g in parts]), n_cells=n)
                           for parts in by_size.values())
 
 
@@ -1146,6 +1156,7 @@ def _best_cycles(table: LinkedTable, q: Quantity, targets: np.ndarray, room_up: 
     amount = np.zeros((2, m))                         # how far the best cycle moves each target: up, down
     chosen = np.full((3, 2, m), -1, dtype=np.int64)   # its circuits, row, partner row (−1: none) per direction
     steps = np.zeros((2, m))                          # its step along +φ at the row's unit (negative: −φ)
+    room = np.concatenate([room_up, room_down])
     for c_id, circuits in enumerate(table.circuits):
         where = index[circuits.cells]                 # rows × cells of φ: the target there, or −1
         row, k = np.nonzero(where >= 0)
@@ -1153,11 +1164,16 @@ def _best_cycles(table: LinkedTable, q: Quantity, targets: np.ndarray, room_up: 
             continue
         t = where[row, k]
         phi = circuits.step[row, k]
-        size = np.abs(circuits.step)
-        rises = circuits.step > 0
-        up, down = room_up[circuits.cells] / size, room_down[circuits.cells] / size
-        forwards = np.min(np.where(rises, up, down), axis=1)    # room to run +φ at each row's unit
-        backwards = np.min(np.where(rises, down, up), axis=1)   # and −φ
+        forwards_at, backwards_at, size = circuits.rooms_at
+        forwards, backwards = room[forwards_at], room[backwards_at]
+        if size is not None:
+            forwards, backwards = forwards / size, backwards / size
+        forwards = forwards.min(axis=1)               # room to run +φ at each row's unit
+        backwards = backwards.min(axis=1)             # and −φ
+        # a target on several circuits of one size: its entries side by side, to keep its best
+        by_target = np.argsort(t, kind="stable")
+        firsts = np.flatnonzero(np.r_[True, t[by_target][1:] != t[by_target][:-1]])
+        once = len(firsts) == len(t)
         paired = circuits.group[row] >= 0                       # the sibling runs the other way
         with_forwards = np.where(paired, _best_sibling(circuits, backwards, row), -1)
         with_backwards = np.where(paired, _best_sibling(circuits, forwards, row), -1)
@@ -1170,9 +1186,13 @@ def _best_cycles(table: LinkedTable, q: Quantity, targets: np.ndarray, room_up: 
             step = np.where(paired, np.minimum(step, other), step)
             step = np.where(np.isfinite(step), np.maximum(step, 0.0), 0.0)
             gain = step * np.abs(phi)
-            # a target lies on several circuits of one size: its best entry among them
-            order = np.lexsort((gain, t))
-            best = order[np.r_[t[order][1:] != t[order][:-1], True]]
+            if once:
+                best = np.arange(len(t))
+            else:
+                ordered = gain[by_target]
+                most = np.maximum.reduceat(ordered, firsts)
+                at_most = ordered == np.repeat(most, np.diff(np.r_[firsts, len(t)]))
+                best = by_target[np.minimum.reduceat(np.where(at_most, np.arange(len(t)), len(t)), firsts)]
             best = best[gain[best] > amount[d, t[best]]]
             t_b = t[best]
             amount[d, t_b] = gain[best]
