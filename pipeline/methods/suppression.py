@@ -1148,13 +1148,14 @@ def _best_cycles(table: LinkedTable, q: Quantity, targets: np.ndarray, room_up: 
     run the other way (the cycle's step is the smaller of the two units' rooms, and the target's
     move is that step times its |φ|), so the best sibling of each unit is all that is needed, not
     every pair. Where the best cycles up and down prove a target, their points go to `witnesses`.
-    Returns the targets they do not prove. The cycles are those of `table.cycles`: the same best
-    moves, so the targets left are those that need cycles added up."""
+    Returns the targets they do not prove. The cycles are those of `table.cycles` (a circuit one
+    of whose cycles failed the check is left out, and its targets with it), so the targets left
+    are those that need cycles added up."""
     m = len(targets)
     index = np.full(table.n_cells, -1)
     index[targets] = np.arange(m)
     amount = np.zeros((2, m))                         # how far the best cycle moves each target: up, down
-    chosen = np.full((3, 2, m), -1, dtype=np.int64)   # its circuits, row, partner row (−1: none) per direction
+    chosen = np.full((3, 2, m), -1, dtype=np.int64)   # its batch of circuits, row, partner row (−1: none)
     steps = np.zeros((2, m))                          # its step along +φ at the row's unit (negative: −φ)
     room = np.concatenate([room_up, room_down])
     for c_id, circuits in enumerate(table.circuits):
