@@ -91,9 +91,8 @@ def apply_rule(severity: np.ndarray, reasons: list[list[str]], mask: np.ndarray,
 
 def settle(frame: pd.DataFrame, severity: np.ndarray, reasons: list[list[str]], descriptions: dict[str, str]) -> None:
     """Write status, reasons and note columns into `frame`. A few combinations of codes recur
-    over every cell: each note is written once and its cells share the string (a note runs to
-    hundreds of characters; built cell by cell, the notes of the S benchmark's 467,000 cells took
-    1.7 s and a string each)."""
+    over every cell: each is joined and described once and its cells take it by index (a note runs
+    to hundreds of characters; joined cell by cell, the S benchmark's 467,000 notes took 1.7 s)."""
     names = np.array([s.value for s in Status], dtype=object)
     frame["status"] = names[severity]
     which, combinations = pd.factorize(np.array([";".join(r) for r in reasons], dtype=object))

@@ -263,7 +263,7 @@ def test_best_cycles_prove_exactly_the_targets_one_cycle_each_way_proves(seed):
     lower, upper = S._bounds(q, hidden)
     targets = np.flatnonzero(hidden)
     witnesses = S._Witnesses(table.n_cells)
-    left = S._best_cycles(table, q, targets, upper - values, values - lower, witnesses)
+    left = S._best_cycles(table, q, targets, np.concatenate([upper - values, values - lower]), witnesses)
     points = witnesses.matrix().toarray()
     assert np.abs(table.relations @ points.T).max(initial=0) < 1e-9
     assert (values + points >= lower - 1e-9).all() and (values + points <= upper + 1e-9).all()

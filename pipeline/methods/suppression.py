@@ -157,6 +157,22 @@ class CostKind(str, Enum):
 # The linked table
 
 
+def _rooms_at(cells: np.ndarray, step: np.ndarray, n_cells: int) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
+    """For moves that take `cells` by `step` (either array's shape): where the room for running a
+    move forwards, and backwards, sits in the array [room up of every cell, room down of every
+    cell] (a cell's room up where the step raises it, its room down where it lowers it), and the
+    steps' sizes |step| (None when all are 1)."""
+    rises = step > 0
+    size = np.abs(step)
+    return cells + n_cells * ~rises, cells + n_cells * rises, None if np.all(size == 1) else size
+
+
+def _least_room(room: np.ndarray, at: np.ndarray, size: np.ndarray | None, axis: int) -> np.ndarray:
+    """How far each move can go: the least of its cells' rooms (`room` at `at`) over their step sizes."""
+    rooms = room[at] if size is None else room[at] / size
+    return np.minimum.reduce(rooms, axis=axis)
+
+
 @dataclass(frozen=True)
 class SiblingCircuits:
     """Circuits φ of the category relations, each at every unit of its geography level that has
@@ -172,12 +188,8 @@ class SiblingCircuits:
 
     @cached_property
     def rooms_at(self) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
-        """Where the room to run +φ and to run −φ sits for each cell of each row, in the array
-        [room up of every cell, room down of every cell], and |φ| (None when every step is ±1)."""
-        rises = self.step > 0
-        size = np.abs(self.step)
-        return (self.cells + self.n_cells * ~rises, self.cells + self.n_cells * rises,
-                None if np.all(size == 1) else size)
+        """`_rooms_at` of each row's +φ (asked on every audit: kept)."""
+        return _rooms_at(self.cells, self.step, self.n_cells)
 
     @cached_property
     def by_group(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -232,10 +244,7 @@ class LinkedTable:
         for length in np.unique(lengths[lengths > 0]):
             rows = np.flatnonzero(lengths == length)
             entries = C.indptr[rows][None, :] + np.arange(length)[:, None]  # cells × cycles
-            cells, rises = C.indices[entries].astype(np.int64), C.data[entries] > 0
-            size = np.abs(C.data[entries])
-            groups.append((rows, cells + self.n_cells * ~rises, cells + self.n_cells * rises,
-                           None if np.all(size == 1) else size))
+            groups.append((rows, *_rooms_at(C.indices[entries].astype(np.int64), C.data[entries], self.n_cells)))
         return groups
 
     @property
@@ -1078,7 +1087,8 @@ def _cycle_proofs(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets: 
         return
     lower, upper = _bounds(q, hidden)
     room_up, room_down = upper - q.value, q.value - lower
-    targets = _best_cycles(table, q, np.sort(targets), room_up, room_down, witnesses)
+    room = np.concatenate([room_up, room_down])
+    targets = _best_cycles(table, q, np.sort(targets), room, witnesses)
     if not len(targets):
         return
     through = table.cycles_by_cell[:, targets]      # per target: its cycles and its step in each
@@ -1088,7 +1098,6 @@ def _cycle_proofs(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets: 
     # how far each cycle through a target can go on its own, up (+t) and down (−t)
     wanted = np.zeros(n_cycles, dtype=bool)
     wanted[through.indices] = True
-    room = np.concatenate([room_up, room_down])
     reach = np.zeros(2 * n_cycles)   # [+t of every cycle, −t of every cycle]
     for rows, plus, minus, size in table.cycle_rooms:
         pick = np.flatnonzero(wanted[rows])
@@ -1096,8 +1105,7 @@ def _cycle_proofs(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets: 
             rows, plus, minus = rows[pick], plus[:, pick], minus[:, pick]
             size = None if size is None else size[:, pick]
         for offset, where in ((0, plus), (n_cycles, minus)):
-            rooms = room[where] if size is None else room[where] / size
-            most = np.minimum.reduce(rooms, axis=0)
+            most = _least_room(room, where, size, axis=0)
             reach[offset + rows] = np.where(np.isfinite(most), np.maximum(most, 0.0), 0.0)
     # per (target, cycle) entry and direction: how far the cycle alone takes the target; the
     # cycles that cannot move at all (through an exact published figure, say) are left out
@@ -1141,13 +1149,14 @@ def _cycle_proofs(table: LinkedTable, q: Quantity, hidden: np.ndarray, targets: 
         witnesses.add_rows(sparse.csr_matrix((val, (row, col)), shape=(2 * len(targets), n)))
 
 
-def _best_cycles(table: LinkedTable, q: Quantity, targets: np.ndarray, room_up: np.ndarray, room_down: np.ndarray,
+def _best_cycles(table: LinkedTable, q: Quantity, targets: np.ndarray, room: np.ndarray,
                  witnesses: _Witnesses) -> np.ndarray:
     """The best single cycle through each target (sorted), up and down, found circuit by circuit:
     a target at unit u moves furthest along ±φ at u minus ±φ at the sibling with the most room to
     run the other way (the cycle's step is the smaller of the two units' rooms, and the target's
     move is that step times its |φ|), so the best sibling of each unit is all that is needed, not
-    every pair. Where the best cycles up and down prove a target, their points go to `witnesses`.
+    every pair. `room`: [room up of every cell, room down of every cell]. Where the best cycles up
+    and down prove a target, their points go to `witnesses`.
     Returns the targets they do not prove. The cycles are those of `table.cycles` (a circuit one
     of whose cycles failed the check is left out, and its targets with it), so the targets left
     are those that need cycles added up."""
@@ -1157,7 +1166,6 @@ def _best_cycles(table: LinkedTable, q: Quantity, targets: np.ndarray, room_up: 
     amount = np.zeros((2, m))                         # how far the best cycle moves each target: up, down
     chosen = np.full((3, 2, m), -1, dtype=np.int64)   # its batch of circuits, row, partner row (−1: none)
     steps = np.zeros((2, m))                          # its step along +φ at the row's unit (negative: −φ)
-    room = np.concatenate([room_up, room_down])
     for c_id, circuits in enumerate(table.circuits):
         where = index[circuits.cells]                 # rows × cells of φ: the target there, or −1
         row, k = np.nonzero(where >= 0)
@@ -1166,11 +1174,8 @@ def _best_cycles(table: LinkedTable, q: Quantity, targets: np.ndarray, room_up: 
         t = where[row, k]
         phi = circuits.step[row, k]
         forwards_at, backwards_at, size = circuits.rooms_at
-        forwards, backwards = room[forwards_at], room[backwards_at]
-        if size is not None:
-            forwards, backwards = forwards / size, backwards / size
-        forwards = forwards.min(axis=1)               # room to run +φ at each row's unit
-        backwards = backwards.min(axis=1)             # and −φ
+        forwards = _least_room(room, forwards_at, size, axis=1)     # room to run +φ at each row's unit
+        backwards = _least_room(room, backwards_at, size, axis=1)   # and −φ
         # a target on several circuits of one size: its entries side by side, to keep its best
         by_target = np.argsort(t, kind="stable")
         firsts = np.flatnonzero(np.r_[True, t[by_target][1:] != t[by_target][:-1]])
